@@ -1,0 +1,115 @@
+"""Per-site hit counts and live time in fixed GPS-aligned bins (default 1 s), in a ring.
+
+This is the memory every rate estimate and excess window reads from. Bin ``k``
+covers ``[k * bin_ns, (k + 1) * bin_ns)``. Live time is split across bin edges
+exactly (integer ns), so exposure excludes dead time to the nanosecond.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from tocsin.engine.block import Block
+from tocsin.types import I64Array
+
+
+class BinStore:
+    """Ring of ``capacity`` bins x ``n_sites`` of counts and live nanoseconds.
+
+    Bins must be filled in order: :meth:`add` takes blocks whose spans follow on
+    from each other. ``first_bin`` .. ``end_bin`` (exclusive) is what is held;
+    bins before ``first_bin`` have been overwritten.
+    """
+
+    def __init__(self, n_sites: int, *, bin_ns: int, capacity: int) -> None:
+        if bin_ns <= 0 or capacity <= 0 or n_sites <= 0:
+            raise ValueError(
+                f"bin_ns={bin_ns}, capacity={capacity}, n_sites={n_sites}: all must be positive"
+            )
+        self.n_sites = n_sites
+        self.bin_ns = bin_ns
+        self.capacity = capacity
+        self._counts = np.zeros((n_sites, capacity), dtype=np.int64)
+        self._live = np.zeros((n_sites, capacity), dtype=np.int64)
+        self.end_bin: int | None = None  # one past the last bin written
+
+    @property
+    def first_bin(self) -> int:
+        """Oldest bin still held (inclusive)."""
+        if self.end_bin is None:
+            return 0
+        return self.end_bin - self.capacity
+
+    def add(self, block: Block) -> None:
+        """Accumulate a block's hits and live time into its bins."""
+        b0 = block.t_start // self.bin_ns
+        b1 = -(-block.t_end // self.bin_ns)  # ceil
+        if self.end_bin is None:
+            self.end_bin = b0
+        if b0 < self.end_bin - 1:
+            raise ValueError(
+                f"block starting in bin {b0} is older than the store's newest bin {self.end_bin - 1}"
+            )
+        # Zero the bins that are about to be (re)used, then advance.
+        for b in range(max(self.end_bin, b1 - self.capacity), b1):
+            self._counts[:, b % self.capacity] = 0
+            self._live[:, b % self.capacity] = 0
+        self.end_bin = max(self.end_bin, b1)
+        if block.t.size:
+            col = (block.t // self.bin_ns) % self.capacity
+            np.add.at(self._counts, (block.site.astype(np.intp), col.astype(np.intp)), 1)
+        if block.live_site.size:
+            self._add_live(block.live_site, block.live_start, block.live_end)
+
+    def _add_live(self, site: I64Array | np.ndarray, start: I64Array, end: I64Array) -> None:
+        bn = self.bin_ns
+        first = start // bn
+        last = (end - 1) // bn
+        nspan = np.maximum(last - first + 1, 0)
+        keep = (end > start) & (nspan > 0)
+        site, start, end, first, nspan = site[keep], start[keep], end[keep], first[keep], nspan[keep]
+        rep = np.repeat(np.arange(site.size), nspan)
+        offs = np.arange(rep.size) - np.repeat(np.cumsum(nspan) - nspan, nspan)
+        b = first[rep] + offs
+        lo = np.maximum(start[rep], b * bn)
+        hi = np.minimum(end[rep], (b + 1) * bn)
+        np.add.at(
+            self._live,
+            (site[rep].astype(np.intp), (b % self.capacity).astype(np.intp)),
+            hi - lo,
+        )
+
+    def _cols(self, b0: int, b1: int) -> np.ndarray:
+        if self.end_bin is None or b0 < self.first_bin or b1 > self.end_bin or b1 < b0:
+            raise IndexError(
+                f"bins [{b0}, {b1}) are not all held (held: [{self.first_bin}, {self.end_bin}))"
+            )
+        return np.arange(b0, b1) % self.capacity
+
+    def counts(self, b0: int, b1: int) -> I64Array:
+        """Hit counts, shape (n_sites, b1 - b0), for bins ``[b0, b1)``."""
+        return self._counts[:, self._cols(b0, b1)]
+
+    def live_ns(self, b0: int, b1: int) -> I64Array:
+        """Live nanoseconds, shape (n_sites, b1 - b0), for bins ``[b0, b1)``."""
+        return self._live[:, self._cols(b0, b1)]
+
+    def state(self) -> dict[str, object]:
+        """Everything needed to restore the store (for checkpoints)."""
+        return {
+            "bin_ns": self.bin_ns,
+            "capacity": self.capacity,
+            "end_bin": self.end_bin,
+            "counts": self._counts.copy(),
+            "live": self._live.copy(),
+        }
+
+    def restore(self, st: dict[str, object]) -> None:
+        """Load what :meth:`state` returned (same shape required)."""
+        counts = np.asarray(st["counts"], dtype=np.int64)
+        if counts.shape != self._counts.shape or int(st["bin_ns"]) != self.bin_ns:  # type: ignore[call-overload]
+            raise ValueError(f"checkpoint shape {counts.shape} does not fit {self._counts.shape}")
+        self._counts[...] = counts
+        self._live[...] = np.asarray(st["live"], dtype=np.int64)
+        end = st["end_bin"]
+        self.end_bin = None if end is None else int(end)  # type: ignore[call-overload]

@@ -1,0 +1,1 @@
+"""Files and formats: recordings, archives, packets."""

@@ -1,0 +1,1 @@
+"""Validated data models: site registry, hit batches, candidates, configuration."""

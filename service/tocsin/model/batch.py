@@ -1,0 +1,144 @@
+"""Hit batch, version 1 (contract §3): validation into numpy arrays.
+
+A batch that breaks any rule is rejected whole with :class:`BatchRejected`,
+whose ``reason`` is one of :data:`REJECT_REASONS` and whose ``field`` names the
+offending field. Structure and types are checked by pydantic (strict: no
+coercion of strings or booleans to numbers); ordering and bounds of the hit
+times are then checked vectorised with numpy.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Annotated, Any, Literal
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from tocsin.errors import BatchRejected
+from tocsin.model.registry import SiteRegistry
+from tocsin.types import F64Array, GpsNs, I64Array
+
+MAX_HITS_PER_BATCH = 1_000_000
+"""Largest batch accepted (hits). A 1 s batch of a 1 m^2 scintillator holds ~200."""
+I64_MAX = 2**63 - 1
+
+REJECT_REASONS = (
+    "bad_json",
+    "bad_schema",
+    "bad_version",
+    "unknown_site",
+    "site_topic_mismatch",
+    "bad_live",
+    "unsorted_hits",
+    "hit_outside_live",
+    "amp_length",
+    "too_large",
+    "duplicate_seq",
+    "late",
+)
+"""Every reason a batch can be refused for, as used in metrics and summaries."""
+
+Int64 = Annotated[int, Field(strict=True, ge=0, le=I64_MAX)]
+
+
+class _BatchV1(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True)
+
+    v: Literal[1]
+    site: str
+    seq: Int64
+    live: tuple[Int64, Int64]
+    t: list[Int64]
+    amp: list[Annotated[float, Field(strict=False, allow_inf_nan=False)]] | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class HitBatch:
+    """A validated batch. ``t`` is sorted int64 GPS ns inside ``[live_start, live_end)``."""
+
+    site: str
+    site_index: int
+    seq: int
+    live_start: GpsNs
+    live_end: GpsNs
+    t: I64Array
+    amp: F64Array | None = None
+    recv_ns: GpsNs | None = None
+
+    @property
+    def n_hits(self) -> int:
+        return int(self.t.size)
+
+    def to_json_obj(self) -> dict[str, Any]:
+        """The contract's JSON object (with ``recv_ns`` when known)."""
+        obj: dict[str, Any] = {
+            "v": 1,
+            "site": self.site,
+            "seq": self.seq,
+            "live": [self.live_start, self.live_end],
+            "t": self.t.tolist(),
+        }
+        if self.amp is not None:
+            obj["amp"] = self.amp.tolist()
+        if self.recv_ns is not None:
+            obj["recv_ns"] = self.recv_ns
+        return obj
+
+
+def parse_batch(
+    obj: Any,
+    registry: SiteRegistry,
+    *,
+    topic_site: str | None = None,
+    recv_ns: GpsNs | None = None,
+) -> HitBatch:
+    """Validate a decoded JSON object as a v1 hit batch.
+
+    ``topic_site`` (the site segment of the MQTT topic, when there is one) must
+    equal the batch's ``site``. Raises :class:`BatchRejected` naming the field.
+    """
+    if not isinstance(obj, dict):
+        raise BatchRejected("bad_schema", "<root>", f"expected a JSON object, got {type(obj).__name__}")
+    if obj.get("v", None) != 1:
+        raise BatchRejected("bad_version", "v", f"schema version {obj.get('v')!r} is not supported (only 1)")
+    t_raw = obj.get("t")
+    if isinstance(t_raw, list) and len(t_raw) > MAX_HITS_PER_BATCH:
+        raise BatchRejected("too_large", "t", f"{len(t_raw)} hits exceed the limit of {MAX_HITS_PER_BATCH}")
+    try:
+        m = _BatchV1.model_validate(obj)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        loc = ".".join(str(x) for x in err["loc"]) or "<root>"
+        raise BatchRejected("bad_schema", loc, err["msg"]) from None
+    if m.site not in registry:
+        raise BatchRejected("unknown_site", "site", f"site {m.site!r} is not in the registry ({len(registry)} sites known)")
+    if topic_site is not None and topic_site != m.site:
+        raise BatchRejected("site_topic_mismatch", "site", f"batch names site {m.site!r} but arrived on the topic of {topic_site!r}")
+    start, end = m.live
+    if end < start:
+        raise BatchRejected("bad_live", "live", f"live interval [{start}, {end}) ends before it starts")
+    t = np.asarray(m.t, dtype=np.int64)
+    if t.size:
+        d = np.diff(t)
+        if d.size and bool((d < 0).any()):
+            k = int(np.flatnonzero(d < 0)[0])
+            raise BatchRejected("unsorted_hits", "t", f"t[{k + 1}]={int(t[k + 1])} is earlier than t[{k}]={int(t[k])}")
+        if int(t[0]) < start or int(t[-1]) >= end:
+            bad = int(t[0]) if int(t[0]) < start else int(t[-1])
+            raise BatchRejected("hit_outside_live", "t", f"hit time {bad} is outside live [{start}, {end})")
+    amp: F64Array | None = None
+    if m.amp is not None:
+        if len(m.amp) != t.size:
+            raise BatchRejected("amp_length", "amp", f"{len(m.amp)} amplitudes for {t.size} hits")
+        amp = np.asarray(m.amp, dtype=float)
+    return HitBatch(
+        site=m.site,
+        site_index=registry.index(m.site),
+        seq=m.seq,
+        live_start=start,
+        live_end=end,
+        t=t,
+        amp=amp,
+        recv_ns=recv_ns,
+    )
