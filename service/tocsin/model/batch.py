@@ -48,7 +48,7 @@ class _BatchV1(BaseModel):
     v: Literal[1]
     site: str
     seq: Int64
-    live: tuple[Int64, Int64]
+    live: Annotated[list[Int64], Field(min_length=2, max_length=2)]
     t: list[Int64]
     amp: list[Annotated[float, Field(strict=False, allow_inf_nan=False)]] | None = None
 

@@ -21,8 +21,10 @@ class RateConfig(BaseModel):
     """Width of the exposure bins (s). Every excess window is a whole number of bins."""
     background_s: Annotated[float, Field(ge=60.0)] = 3600.0
     """Length of the background stretch that judges a window (s)."""
-    min_live_fraction: Annotated[float, Field(ge=0.0, le=1.0)] = 0.2
-    """A site needs this fraction of the background stretch live before it takes part."""
+    min_live_s: Annotated[float, Field(ge=1.0)] = 60.0
+    """A site needs this much live time (s) in its background stretch before it takes
+    part, so a restarted network is searched after a minute, with the posterior of a
+    short exposure."""
 
 
 class CoincidenceConfig(BaseModel):

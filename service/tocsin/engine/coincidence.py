@@ -1,0 +1,208 @@
+"""Coincidence trigger: distinct sites firing within a geometry-aware window.
+
+Every hit is a *seed*. For a seed at site ``s`` and a window scale ``W``, site
+``j`` counts if it has a hit in its **forward slot**
+
+    [t_s - k sigma_sj,  t_s + |r_s - r_j| / c + k sigma_sj + W]
+
+(``sigma_sj`` the two clocks' combined 1-sigma error, ``k`` = ``clock_sigmas``): a
+plane front that reaches ``s`` first reaches ``j`` at most one light-time later,
+and clocks can shift either hit. Forward-only slots mean each chance cluster is
+counted once, from its earliest hit.
+
+Statistic ``sites`` (every scale). Under the null (independent Poisson sites with
+rates lambda_j from :mod:`tocsin.engine.rates`) site ``j`` occupies its slot with
+probability ``q_sj = f_j (1 - exp(-lambda_j |slot|))`` (``f_j`` its live fraction),
+so the number of other sites K is Poisson-binomial(q). Ties in K are broken by
+how early in its slot each site fired: for the first hit at offset ``x`` into a
+slot of width ``w``, ``u = (1 - e^{-lambda x}) / (1 - e^{-lambda w})`` is uniform
+under the null, and ``-sum ln u`` is Gamma(K, 1) (Fisher's method). The p-value
+
+    p = P(K > k) + P(K = k) * P(Gamma(k) >= -sum ln u)
+
+is then exactly uniform under the null (a lexicographic ordering on (K, compactness)).
+
+Statistic ``front`` (short scales, sites with good clocks): see :mod:`tocsin.engine.front`.
+
+False alarm rate. By linearity of expectation, if every evaluated (seed, scale,
+statistic) has a uniform p-value, the expected number with p <= x per second is
+x * R, where R sums the seed rate of every evaluated (scale, statistic, seed
+site). So ``far = p * R``, whatever the correlations between scales. A scale
+that would only repeat a smaller one for a seed site (expected neighbour count
+changed by less than ``redundancy_ratio``) is not evaluated and not counted.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from tocsin.engine.pairs import window_pairs
+from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_rows
+from tocsin.model.config import CoincidenceConfig
+from tocsin.model.registry import SiteRegistry
+from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I32Array, I64Array
+
+
+@dataclass(frozen=True, slots=True)
+class ScaleTables:
+    """Null-hypothesis tables for one scale, valid while rates and live fractions hold."""
+
+    q: F64Array
+    """(N, N) occupancy probability of site j's slot for a seed at site s (0 = not counted)."""
+    active: BoolArray
+    """(N,) seed sites for which this scale is evaluated."""
+    tail_gt: F64Array
+    """(N, N + 1): P(K > k) for seed site s."""
+    point: F64Array
+    """(N, N + 1): P(K = k) for seed site s."""
+
+
+@dataclass(frozen=True, slots=True)
+class Tables:
+    """Everything the null hypothesis needs for a stretch of constant rates."""
+
+    rates_per_ns: F64Array
+    scales: tuple[ScaleTables, ...]
+    trial_rate_hz: float
+    """Seed evaluations per second, all scales and statistics (the FAR multiplier)."""
+
+
+@dataclass(frozen=True, slots=True)
+class SeedResult:
+    """Decisions of one scale: seeds that passed, with their neighbour hits."""
+
+    scale_index: int
+    seed_idx: I64Array
+    """Stream index of each passing seed."""
+    p: F64Array
+    multiplicity: I64Array
+    nb_seed: I64Array
+    """Group number (0 .. len(seed_idx)-1) of each neighbour hit below."""
+    nb_idx: I64Array
+    """Stream index of the earliest in-slot hit of each counted neighbour site."""
+
+
+class SlotGeometry:
+    """Forward slot bounds (ns, relative to the seed) per scale and site pair."""
+
+    def __init__(self, registry: SiteRegistry, cfg: CoincidenceConfig) -> None:
+        r = registry.ecef_m
+        light = np.linalg.norm(r[:, None, :] - r[None, :, :], axis=-1) / C_M_PER_NS
+        sig = registry.clock_sigma_ns
+        comb = np.sqrt(sig[:, None] ** 2 + sig[None, :] ** 2)
+        self.n_sites = len(registry)
+        self.scales_ns = np.array([round(w * 1e9) for w in cfg.scales_s], dtype=np.int64)
+        self.lo = -np.ceil(cfg.clock_sigmas * comb)  # (N, N), <= 0
+        base_hi = np.ceil(light + cfg.clock_sigmas * comb)
+        self.hi = base_hi[None, :, :] + self.scales_ns[:, None, None]  # (S, N, N)
+        self.width = self.hi - self.lo[None, :, :]
+        self.back_ns = int(-self.lo.min())
+        self.ahead_ns = [int(h.max()) for h in self.hi]
+
+
+class CoincidenceTrigger:
+    """The ``sites`` statistic at every scale; the ``front`` statistic is added by
+    :class:`tocsin.engine.front.FrontSearch` through :meth:`extra_trial_rate`."""
+
+    def __init__(self, registry: SiteRegistry, cfg: CoincidenceConfig) -> None:
+        self.cfg = cfg
+        self.geom = SlotGeometry(registry, cfg)
+        self.n_sites = len(registry)
+
+    @property
+    def max_ahead_ns(self) -> int:
+        return max(self.geom.ahead_ns)
+
+    def tables(
+        self, rates_hz: F64Array, live_frac: F64Array, ok: BoolArray, *, extra_trial_rate_hz: float = 0.0
+    ) -> Tables:
+        """Build the null tables for per-site ``rates_hz``, live fractions and usable mask."""
+        n = self.n_sites
+        lam = np.where(ok, rates_hz, 0.0) * 1e-9  # per ns
+        f = np.where(ok, np.clip(live_frac, 0.0, 1.0), 0.0)
+        not_self = ~np.eye(n, dtype=bool)
+        scales: list[ScaleTables] = []
+        prev_e = np.full(n, np.nan)
+        trial = extra_trial_rate_hz
+        for k in range(self.geom.scales_ns.size):
+            occ = -np.expm1(-lam[None, :] * self.geom.width[k])
+            allowed = not_self & (occ <= self.cfg.occupancy_cap) & ok[None, :] & ok[:, None]
+            q = np.where(allowed, f[None, :] * occ, 0.0)
+            e = q.sum(axis=1)
+            ratio = self.cfg.redundancy_ratio
+            fresh = np.isnan(prev_e) | (e >= ratio * prev_e) | (e * ratio <= prev_e)
+            enough = allowed.sum(axis=1) >= self.cfg.min_multiplicity - 1
+            active = ok & fresh & enough & (lam > 0)
+            prev_e = np.where(active, e, prev_e)
+            pmf = poisson_binomial_pmf_rows(q)  # (N, N + 1)
+            tail_ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]
+            tail_gt = np.concatenate([tail_ge[:, 1:], np.zeros((n, 1))], axis=1)
+            scales.append(ScaleTables(q, active, np.clip(tail_gt, 0.0, 1.0), pmf))
+            trial += float(np.sum(lam[active] * f[active])) * 1e9
+        return Tables(lam, tuple(scales), trial)
+
+    def evaluate(
+        self,
+        t: I64Array,
+        site: I32Array,
+        seed_lo: int,
+        seed_hi: int,
+        tables: Tables,
+        scale_index: int,
+        *,
+        p_max: float,
+    ) -> SeedResult:
+        """Evaluate seeds ``t[seed_lo:seed_hi]`` at one scale; keep those with p <= p_max
+        and multiplicity >= ``min_multiplicity``. ``t`` must hold every hit within the
+        slots of those seeds."""
+        st = tables.scales[scale_index]
+        k = scale_index
+        seed_pos = np.arange(seed_lo, seed_hi, dtype=np.int64)
+        seed_pos = seed_pos[st.active[site[seed_pos]]]
+        empty = np.zeros(0, dtype=np.int64)
+        if seed_pos.size == 0:
+            return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
+        # Restrict the stream to sites that can count at this scale.
+        counts_as_nb = st.q.sum(axis=0) > 0
+        sub = np.flatnonzero(counts_as_nb[site])
+        t_sub, s_sub = t[sub], site[sub]
+        pr = window_pairs(t_sub, t[seed_pos], back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k])
+        s_seed = site[seed_pos][pr.seed]
+        s_nb = s_sub[pr.nb]
+        d = (t_sub[pr.nb] - t[seed_pos][pr.seed]).astype(np.float64)
+        lo = self.geom.lo[s_seed, s_nb]
+        hi = self.geom.hi[k][s_seed, s_nb]
+        keep = (st.q[s_seed, s_nb] > 0) & (d >= lo) & (d <= hi)
+        g_seed, g_nb, s_seed, s_nb, d, lo = (
+            pr.seed[keep], pr.nb[keep], s_seed[keep], s_nb[keep], d[keep], lo[keep]
+        )
+        # Earliest hit per (seed, neighbour site): pairs are in (seed, time) order.
+        _, first = np.unique(g_seed * self.n_sites + s_nb, return_index=True)
+        g_seed, g_nb, s_seed, s_nb, d, lo = (
+            g_seed[first], g_nb[first], s_seed[first], s_nb[first], d[first], lo[first]
+        )
+        lam = tables.rates_per_ns[s_nb]
+        w = self.geom.width[k][s_seed, s_nb]
+        u = -np.expm1(-lam * (d - lo)) / -np.expm1(-lam * w)
+        log_u = np.log(np.clip(u, 1e-300, 1.0))
+        n_seed = seed_pos.size
+        kk = np.bincount(g_seed, minlength=n_seed)
+        x = -np.bincount(g_seed, weights=log_u, minlength=n_seed)
+        ss = site[seed_pos]
+        p = st.tail_gt[ss, kk] + st.point[ss, kk] * fisher_combined_sf(x, kk)
+        p = np.clip(p, 0.0, 1.0)
+        passing = (p <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
+        idx = np.flatnonzero(passing)
+        sel = np.isin(g_seed, idx)
+        remap = np.full(n_seed, -1, dtype=np.int64)
+        remap[idx] = np.arange(idx.size)
+        return SeedResult(
+            k,
+            seed_pos[idx],
+            p[idx],
+            (kk[idx] + 1).astype(np.int64),
+            remap[g_seed[sel]],
+            sub[g_nb[sel]].astype(np.int64),
+        )

@@ -1,0 +1,212 @@
+"""The engine: blocks in, candidates out. Pure and synchronous.
+
+:class:`Engine` owns the exposure bins, a short buffer of recent hits, the
+triggers and the merger. Its output for a stream depends only on the stream,
+not on how the stream was cut into blocks (tested), so the live service,
+replay and tuning agree exactly.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from tocsin.engine.block import Block
+from tocsin.engine.coincidence import CoincidenceTrigger, SeedResult, Tables
+from tocsin.engine.excess import ExcessTrigger
+from tocsin.engine.exposure import BinStore
+from tocsin.engine.merge import Decision, Merger
+from tocsin.engine.rates import background_rates
+from tocsin.model.candidate import Candidate
+from tocsin.model.config import EngineConfig
+from tocsin.model.registry import SiteRegistry
+from tocsin.types import NS_PER_S, SECONDS_PER_YEAR, GpsNs, I32Array, I64Array
+
+RATE_UPDATE_S = 60.0
+"""Coincidence rates are re-estimated once per this many seconds of data (s)."""
+
+
+@dataclass(slots=True)
+class EngineCounters:
+    """Running totals, for summaries and metrics."""
+
+    blocks: int = 0
+    hits: int = 0
+    live_site_ns: int = 0
+    decisions: dict[str, int] = field(default_factory=dict)
+    seeds_evaluated: int = 0
+
+
+class Engine:
+    """Turns time-ordered :class:`Block` s into merged :class:`Candidate` s."""
+
+    def __init__(
+        self,
+        registry: SiteRegistry,
+        cfg: EngineConfig,
+        *,
+        candidate_far_per_year: float | None = None,
+    ) -> None:
+        self.registry = registry
+        self.cfg = cfg
+        self.far_threshold = (
+            cfg.candidate_far_per_year if candidate_far_per_year is None else candidate_far_per_year
+        )
+        if not self.far_threshold > 0:
+            raise ValueError(f"candidate false alarm rate {self.far_threshold!r} must be > 0")
+        n = len(registry)
+        self.bin_ns = round(cfg.rate.bin_s * NS_PER_S)
+        self.bg_bins = math.ceil(cfg.rate.background_s / cfg.rate.bin_s)
+        self.update_bins = max(1, round(RATE_UPDATE_S / cfg.rate.bin_s))
+        self.coinc = CoincidenceTrigger(registry, cfg.coincidence)
+        self.excess = ExcessTrigger(n, registry.ids, cfg.excess, cfg.rate, bin_ns=self.bin_ns)
+        ahead_bins = math.ceil(self.coinc.max_ahead_ns / self.bin_ns) + 1
+        excess_bins = math.ceil(max(cfg.excess.scales_s, default=0.0) / cfg.rate.bin_s)
+        capacity = self.bg_bins + self.update_bins + max(ahead_bins, excess_bins) + 8
+        self.store = BinStore(n, bin_ns=self.bin_ns, capacity=capacity)
+        self._t: I64Array = np.zeros(0, dtype=np.int64)
+        self._s: I32Array = np.zeros(0, dtype=np.int32)
+        self._prog: list[GpsNs | None] = [None] * len(cfg.coincidence.scales_s)
+        self._tables: dict[tuple[int, bytes], Tables] = {}
+        horizon = 2 * self.coinc.max_ahead_ns + 2 * excess_bins * self.bin_ns + 2 * self.bin_ns
+        self.merger = Merger(horizon_ns=horizon)
+        self.counters = EngineCounters()
+        self.t_end: GpsNs | None = None
+        self._first_bin: int | None = None
+
+    # ------------------------------------------------------------------
+    def process(self, block: Block) -> list[Candidate]:
+        """Take the next block (it must follow the previous one) and return new or
+        revised candidates, in the order they became ready."""
+        if self.t_end is not None and block.t_start < self.t_end:
+            raise ValueError(
+                f"block starts at {block.t_start}, before the end of the previous one ({self.t_end})"
+            )
+        self.t_end = block.t_end
+        if self._first_bin is None:
+            self._first_bin = block.t_start // self.bin_ns
+        self.store.add(block)
+        c = self.counters
+        c.blocks += 1
+        c.hits += block.n_hits
+        c.live_site_ns += int(np.sum(block.live_end - block.live_start))
+        if block.t.size:
+            self._t = np.concatenate([self._t, block.t])
+            self._s = np.concatenate([self._s, block.site])
+        decisions = self._coincidences(block.t_end)
+        decisions += self._excesses(block.t_end)
+        self._trim()
+        return self.merger.add(decisions)
+
+    # ------------------------------------------------------------------
+    def _tables_for_bin(self, b: int) -> Tables:
+        epoch = b // self.update_bins
+        live = self.store.live_ns(b, b + 1)[:, 0] / self.bin_ns
+        key = (epoch, np.round(live, 2).tobytes())
+        tab = self._tables.get(key)
+        if tab is None:
+            end_bin = epoch * self.update_bins
+            est = background_rates(
+                self.store,
+                end_bin,
+                background_bins=self.bg_bins,
+                guard_bins=0,
+                min_live_fraction=self.cfg.rate.min_live_s / self.cfg.rate.background_s,
+            )
+            tab = self.coinc.tables(est.rate_hz, np.round(live, 2), est.ok)
+            if len(self._tables) > 64:
+                self._tables.clear()
+            self._tables[key] = tab
+        return tab
+
+    def _coincidences(self, t_end: GpsNs) -> list[Decision]:
+        out: list[Decision] = []
+        done_ns = (t_end // self.bin_ns) * self.bin_ns
+        # The first rate epoch needs some history; sites without enough live time
+        # in their background stretch are left out by background_rates (``ok``).
+        first_ok_bin = -(-((self._first_bin or 0) + 1) // self.update_bins) * self.update_bins
+        for k, ahead in enumerate(self.coinc.geom.ahead_ns):
+            limit = min(done_ns, t_end - ahead)
+            start = self._prog[k]
+            if start is None:
+                start = first_ok_bin * self.bin_ns if self._t.size == 0 else int(self._t[0])
+                start = max(start, first_ok_bin * self.bin_ns)
+            if limit <= start:
+                self._prog[k] = start
+                continue
+            b = start // self.bin_ns
+            while b * self.bin_ns < limit:
+                tab = self._tables_for_bin(b)
+                b_end = b + 1
+                while b_end * self.bin_ns < limit and self._tables_for_bin(b_end) is tab:
+                    b_end += 1
+                lo_t = max(start, b * self.bin_ns)
+                hi_t = min(limit, b_end * self.bin_ns)
+                i0 = int(np.searchsorted(self._t, lo_t, side="left"))
+                i1 = int(np.searchsorted(self._t, hi_t, side="left"))
+                if i1 > i0:
+                    self.counters.seeds_evaluated += i1 - i0
+                    p_max = self.far_threshold / (tab.trial_rate_hz * SECONDS_PER_YEAR)
+                    res = self.coinc.evaluate(self._t, self._s, i0, i1, tab, k, p_max=p_max)
+                    out += self._coinc_decisions(res, tab, ahead)
+                b = b_end
+            self._prog[k] = limit
+        return out
+
+    def _coinc_decisions(self, res: SeedResult, tab: Tables, ahead: int) -> list[Decision]:
+        out: list[Decision] = []
+        ids = self.registry.ids
+        w_s = float(self.cfg.coincidence.scales_s[res.scale_index])
+        for g in range(res.seed_idx.size):
+            si = int(res.seed_idx[g])
+            nb = res.nb_idx[res.nb_seed == g]
+            idx = np.concatenate([[si], nb])
+            idx = idx[np.argsort(self._t[idx], kind="stable")]
+            t_hits = [int(x) for x in self._t[idx]]
+            s_hits = [int(x) for x in self._s[idx]]
+            p = float(res.p[g])
+            far = p * tab.trial_rate_hz * SECONDS_PER_YEAR
+            t_seed = int(self._t[si])
+            cand = Candidate(
+                trigger="coincidence",
+                statistic="sites",
+                time_gps_ns=t_seed,
+                window_s=w_s,
+                sites=[ids[s] for s in s_hits],
+                p_value=p,
+                far_per_year=far,
+                multiplicity=int(res.multiplicity[g]),
+                hit_times_ns=t_hits,
+                details={"trial_rate_hz": tab.trial_rate_hz},
+            )
+            ready = max(t_seed + ahead, (t_seed // self.bin_ns + 1) * self.bin_ns)
+            keys = frozenset(zip(s_hits, t_hits, strict=True))
+            out.append(Decision(cand, ready, hit_keys=keys))
+            self._count("coincidence/sites")
+        return out
+
+    def _excesses(self, t_end: GpsNs) -> list[Decision]:
+        out: list[Decision] = []
+        done_bin = t_end // self.bin_ns
+        for cand in self.excess.process(self.store, done_bin, far_threshold_per_year=self.far_threshold):
+            start = int(cand.time_gps_ns)
+            end = start + round(cand.window_s * NS_PER_S)
+            key = f"{cand.statistic}:{','.join(cand.sites) if cand.statistic == 'site' else '*'}"
+            out.append(Decision(cand, end, span=(key, start, end)))
+            self._count(f"excess/{cand.statistic}")
+        return out
+
+    def _count(self, key: str) -> None:
+        self.counters.decisions[key] = self.counters.decisions.get(key, 0) + 1
+
+    def _trim(self) -> None:
+        progs = [p for p in self._prog if p is not None]
+        if not progs or self._t.size == 0:
+            return
+        keep_from = min(progs) - self.coinc.geom.back_ns - 1
+        cut = int(np.searchsorted(self._t, keep_from, side="left"))
+        if cut > 0:
+            self._t = self._t[cut:]
+            self._s = self._s[cut:]

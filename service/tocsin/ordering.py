@@ -1,0 +1,183 @@
+"""The ordering stage: batches in arrival order -> time-ordered :class:`Block` s.
+
+Pure and synchronous; the live service and replay both drive it with the
+arrival time of each batch (``recv_ns``), which is what makes replay equal live.
+
+Rules, per batch:
+
+* **duplicate** — a ``seq`` already seen for that site is dropped (QoS 1 delivers
+  at least once); counted.
+* **late** — a batch is accepted only if it arrives within the lateness allowance
+  ``L`` of the start of its live interval: ``live_start >= recv_ns - L``. This
+  depends on the batch alone, so every consumer decides the same way whatever
+  its timer ticks, and it guarantees that accepted data never falls into time
+  already released to the engine (the watermark is always ``<= recv_ns - L``).
+  Late batches are counted and returned to the caller, never merged silently;
+  their interval is dead time for the engine.
+* **gaps** — a jump in ``seq`` is a loss until the missing batch turns up.
+
+The watermark ``W = now - L`` advances with each arrival (and with
+:meth:`Orderer.release` on idle ticks); everything before it is final and goes
+to the engine as one :class:`Block`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from tocsin.engine.block import Block
+from tocsin.model.batch import HitBatch
+from tocsin.types import GpsNs
+
+SEQ_MEMORY = 1 << 16
+"""How many recent sequence numbers per site are remembered for duplicate detection."""
+
+
+@dataclass(slots=True)
+class SiteSeqState:
+    """Sequence bookkeeping of one site: highest seq, recent seqs, open gaps."""
+
+    max_seq: int = -1
+    seen: set[int] = field(default_factory=set)
+    missing: set[int] = field(default_factory=set)
+
+
+@dataclass(frozen=True, slots=True)
+class Verdict:
+    """What became of one offered batch: ``accepted``, ``duplicate`` or ``late``."""
+
+    status: str
+    new_gaps: int = 0
+
+
+class Orderer:
+    """Reorders accepted batches into blocks behind a watermark ``now - lateness``."""
+
+    def __init__(self, n_sites: int, *, lateness_ns: int) -> None:
+        if lateness_ns < 0:
+            raise ValueError(f"lateness_ns={lateness_ns} must be >= 0")
+        self.n_sites = n_sites
+        self.lateness_ns = lateness_ns
+        self.watermark: GpsNs | None = None
+        self._now: GpsNs | None = None
+        self._pending: list[HitBatch] = []
+        self._seq = [SiteSeqState() for _ in range(n_sites)]
+        self.n_duplicate = 0
+        self.n_late = 0
+        self.n_accepted = 0
+
+    # -- intake ------------------------------------------------------------
+    def offer(self, batch: HitBatch, recv_ns: GpsNs | None = None) -> Verdict:
+        """Take one validated batch. ``recv_ns`` defaults to the batch's ``recv_ns``,
+        else to its live end (arrival without delay)."""
+        recv = recv_ns if recv_ns is not None else batch.recv_ns
+        if recv is None:
+            recv = batch.live_end
+        now = recv if self._now is None else max(self._now, recv)
+        self._now = now
+        st = self._seq[batch.site_index]
+        if batch.seq in st.seen or (batch.seq <= st.max_seq - SEQ_MEMORY):
+            self.n_duplicate += 1
+            return Verdict("duplicate")
+        floor = now - self.lateness_ns
+        if self.watermark is not None:
+            floor = max(floor, self.watermark)
+        new_gaps = self._note_seq(st, batch.seq)
+        if batch.live_start < floor:
+            self.n_late += 1
+            return Verdict("late", new_gaps)
+        self._pending.append(batch)
+        self.n_accepted += 1
+        return Verdict("accepted", new_gaps)
+
+    def _note_seq(self, st: SiteSeqState, seq: int) -> int:
+        new_gaps = 0
+        if seq > st.max_seq:
+            if st.max_seq >= 0 and seq > st.max_seq + 1:
+                gap = range(st.max_seq + 1, seq)
+                new_gaps = len(gap)
+                if new_gaps <= SEQ_MEMORY:
+                    st.missing.update(gap)
+            st.max_seq = seq
+        else:
+            st.missing.discard(seq)
+        st.seen.add(seq)
+        if len(st.seen) > 2 * SEQ_MEMORY:
+            cut = st.max_seq - SEQ_MEMORY
+            st.seen = {s for s in st.seen if s > cut}
+            st.missing = {s for s in st.missing if s > cut}
+        return new_gaps
+
+    def open_gaps(self) -> dict[int, int]:
+        """Per site index: number of sequence numbers still missing."""
+        return {k: len(s.missing) for k, s in enumerate(self._seq) if s.missing}
+
+    # -- release -----------------------------------------------------------
+    def release(self, now_ns: GpsNs | None = None) -> Block | None:
+        """Advance the watermark to ``now - lateness`` and return the data now final.
+
+        Returns None when the watermark did not move. ``now_ns`` defaults to the
+        latest arrival time seen. At the end of a recording call :meth:`flush`.
+        """
+        now = self._now if now_ns is None else max(now_ns, self._now or now_ns)
+        if now is None:
+            return None
+        self._now = now
+        return self._release_to(now - self.lateness_ns)
+
+    def flush(self) -> Block | None:
+        """Release everything pending (end of input)."""
+        if not self._pending:
+            return None
+        end = max(b.live_end for b in self._pending)
+        return self._release_to(end)
+
+    def _release_to(self, w: GpsNs) -> Block | None:
+        if self.watermark is None:
+            starts = [b.live_start for b in self._pending]
+            if not starts:
+                return None
+            self.watermark = min(starts)
+        if w <= self.watermark:
+            return None
+        w0 = self.watermark
+        take: list[HitBatch] = []
+        keep: list[HitBatch] = []
+        for b in self._pending:
+            (take if b.live_start < w else keep).append(b)
+        ts, ss, ls, lst, len_ = [], [], [], [], []
+        for b in take:
+            if b.live_end <= w:
+                t = b.t
+            else:
+                cut = int(np.searchsorted(b.t, w, side="left"))
+                t = b.t[:cut]
+                keep.append(
+                    HitBatch(b.site, b.site_index, b.seq, w, b.live_end, b.t[cut:], None, b.recv_ns)
+                )
+            ts.append(t)
+            ss.append(np.full(t.size, b.site_index, dtype=np.int32))
+            ls.append(b.site_index)
+            lst.append(max(b.live_start, w0))
+            len_.append(min(b.live_end, w))
+        self._pending = keep
+        self.watermark = w
+        if ts:
+            t_all = np.concatenate(ts)
+            s_all = np.concatenate(ss)
+            order = np.argsort(t_all, kind="stable")
+            t_all, s_all = t_all[order], s_all[order]
+        else:
+            t_all = np.zeros(0, dtype=np.int64)
+            s_all = np.zeros(0, dtype=np.int32)
+        return Block(
+            w0,
+            w,
+            t_all,
+            s_all,
+            np.asarray(ls, dtype=np.int32),
+            np.asarray(lst, dtype=np.int64),
+            np.asarray(len_, dtype=np.int64),
+        )

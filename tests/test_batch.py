@@ -1,0 +1,97 @@
+"""Hit batch v1 validation (contract §3): every rule rejects the whole batch, naming the field."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from tocsin.errors import BatchRejected
+from tocsin.io.recording import Rejected, decode_line
+from tocsin.model.batch import REJECT_REASONS, parse_batch
+from tocsin.model.registry import SiteRegistry
+
+T0 = 1_450_000_000 * 10**9
+
+
+def good(**over: Any) -> dict[str, Any]:
+    b: dict[str, Any] = {
+        "v": 1,
+        "site": "alder-fen-1",
+        "seq": 7,
+        "live": [T0, T0 + 10**9],
+        "t": [T0 + 5, T0 + 600_000_000],
+        "amp": [1.5, 2.0],
+    }
+    b.update(over)
+    return b
+
+
+def test_good_batch_becomes_int64_arrays(small_registry: SiteRegistry) -> None:
+    b = parse_batch(good(), small_registry)
+    assert b.t.dtype.name == "int64"
+    assert b.t.tolist() == [T0 + 5, T0 + 600_000_000]
+    assert b.site_index == 0
+    assert b.n_hits == 2
+
+
+def test_heartbeat_is_valid(small_registry: SiteRegistry) -> None:
+    b = parse_batch(good(t=[], amp=None), small_registry)
+    assert b.n_hits == 0
+
+
+@pytest.mark.parametrize(
+    ("over", "reason", "field"),
+    [
+        ({"v": 2}, "bad_version", "v"),
+        ({"site": "nowhere-9"}, "unknown_site", "site"),
+        ({"seq": -1}, "bad_schema", "seq"),
+        ({"seq": "7"}, "bad_schema", "seq"),
+        ({"seq": True}, "bad_schema", "seq"),
+        ({"t": [T0 + 9, T0 + 5], "amp": None}, "unsorted_hits", "t"),
+        ({"t": [T0 - 1], "amp": None}, "hit_outside_live", "t"),
+        ({"t": [T0 + 10**9], "amp": None}, "hit_outside_live", "t"),
+        ({"t": [-5], "amp": None}, "bad_schema", "t.0"),
+        ({"t": [1.5e18], "amp": None}, "bad_schema", "t.0"),
+        ({"live": [T0 + 10, T0]}, "bad_live", "live"),
+        ({"live": [T0]}, "bad_schema", "live"),
+        ({"amp": [1.0]}, "amp_length", "amp"),
+        ({"extra": 1}, "bad_schema", "extra"),
+    ],
+)
+def test_each_rule_rejects_naming_the_field(
+    small_registry: SiteRegistry, over: dict[str, Any], reason: str, field: str
+) -> None:
+    with pytest.raises(BatchRejected) as err:
+        parse_batch(good(**over), small_registry)
+    assert err.value.reason == reason
+    assert err.value.field == field
+    assert reason in REJECT_REASONS
+
+
+def test_topic_must_match_site(small_registry: SiteRegistry) -> None:
+    with pytest.raises(BatchRejected, match="brack-hill") as err:
+        parse_batch(good(), small_registry, topic_site="brack-hill")
+    assert err.value.reason == "site_topic_mismatch"
+
+
+def test_recording_line_errors_are_reported_not_raised(small_registry: SiteRegistry) -> None:
+    r = decode_line(b'{"v": 1, "site": ', small_registry, line_no=4)
+    assert isinstance(r, Rejected) and r.reason == "bad_json" and r.line_no == 4
+    r2 = decode_line(b"[1, 2]", small_registry, line_no=5)
+    assert isinstance(r2, Rejected) and r2.reason == "bad_schema"
+
+
+@given(st.recursive(st.none() | st.booleans() | st.integers() | st.floats() | st.text(),
+                    lambda c: st.lists(c) | st.dictionaries(st.text(), c), max_leaves=20))
+def test_arbitrary_json_never_crashes(obj: object) -> None:
+    """Property: any JSON value is either a valid batch or a BatchRejected, never another error."""
+    from tocsin.model.registry import Site
+
+    reg = SiteRegistry([Site(id="alder-fen-1", lat_deg=1, lon_deg=2, height_m=0, clock_sigma_ns=10)])
+    try:
+        parse_batch(obj, reg)
+    except BatchRejected as exc:
+        assert exc.reason in REJECT_REASONS
