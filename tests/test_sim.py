@@ -151,6 +151,10 @@ def test_recv_order_nondecreasing_and_some_batches_overtaken(
     assert abs(late.sum() - n * p) < 5 * np.sqrt(n * p * (1 - p))
     on_time_delay = (recv - live_end)[~late] / S
     assert np.quantile(on_time_delay, 0.99) < 2.0  # "almost all well below 3 s"
+    # one connection per site: its on-time batches arrive in seq order
+    for site, bs in _by_site(batches).items():
+        r = np.array([b.recv_ns for b in bs if b.recv_ns - b.live_start <= truth["lateness_s"] * S])
+        assert (np.diff(r) >= 0).all(), site
 
 
 # -- background -----------------------------------------------------------------

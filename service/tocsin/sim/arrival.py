@@ -6,11 +6,12 @@ A batch is sent when its live interval closes and travels for a log-normal delay
 so that ``recv_ns - live_start`` stays at least 0.2 s inside the lateness
 allowance; a fraction ``late_fraction`` of batches, drawn independently of their
 content, is instead held back past the allowance by 0.1 s plus an exponential
-time of mean :data:`LATE_EXTRA_MEAN_S` (a stalled link).
+time of mean :data:`LATE_EXTRA_MEAN_S`.
 
-Delays are independent per batch, so a site's batch can (rarely) overtake its
-predecessor, as after a reconnection that resends a buffer; batches of different
-sites interleave and arrive out of their live-time order.
+A site's on-time batches travel over one connection and arrive in the order
+sent (each arrival is at least the previous one's); a late batch stands for a
+lost message sent again after a time-out, so its successors overtake it.
+Batches of different sites interleave and arrive out of their live-time order.
 """
 
 from __future__ import annotations
@@ -46,6 +47,8 @@ def arrival_times(
     late_delay = (lateness_ns - length_ns) / NS_PER_S + 0.1 + extra_s
     d = np.where(late, late_delay, on_time)
     recv: I64Array = live_end + np.round(d * NS_PER_S).astype(np.int64)
+    # in order on the connection; stays on time: live_start grows with seq
+    recv[~late] = np.maximum.accumulate(recv[~late])
     return recv
 
 
