@@ -84,13 +84,20 @@ def test_recording_line_errors_are_reported_not_raised(small_registry: SiteRegis
     assert isinstance(r2, Rejected) and r2.reason == "bad_schema"
 
 
-@given(st.recursive(st.none() | st.booleans() | st.integers() | st.floats() | st.text(),
-                    lambda c: st.lists(c) | st.dictionaries(st.text(), c), max_leaves=20))
+@given(
+    st.recursive(
+        st.none() | st.booleans() | st.integers() | st.floats() | st.text(),
+        lambda c: st.lists(c) | st.dictionaries(st.text(), c),
+        max_leaves=20,
+    )
+)
 def test_arbitrary_json_never_crashes(obj: object) -> None:
     """Property: any JSON value is either a valid batch or a BatchRejected, never another error."""
     from tocsin.model.registry import Site
 
-    reg = SiteRegistry([Site(id="alder-fen-1", lat_deg=1, lon_deg=2, height_m=0, clock_sigma_ns=10)])
+    reg = SiteRegistry(
+        [Site(id="alder-fen-1", lat_deg=1, lon_deg=2, height_m=0, clock_sigma_ns=10)]
+    )
     try:
         parse_batch(obj, reg)
     except BatchRejected as exc:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 
 from tocsin.model.batch import HitBatch
@@ -36,7 +38,7 @@ def test_blocks_are_time_ordered_and_complete() -> None:
     t = np.concatenate([b.t for b in blocks])
     assert t.tolist() == sorted([T0 + 100, T0 + 900, T0 + 50, T0 + 500, T0 + S + 1, T0 + 2 * S + 7])
     # blocks tile time without overlap
-    for a, b in zip(blocks, blocks[1:], strict=False):
+    for a, b in itertools.pairwise(blocks):
         assert a.t_end == b.t_start
     live = sum(int(np.sum(b.live_end - b.live_start)) for b in blocks)
     assert live == 5 * S  # 3 s of site 0 + 2 s of site 1, nothing counted twice

@@ -103,8 +103,20 @@ def test_same_seed_same_bytes_other_seed_differs(
     for name, seed in (("a", "5"), ("b", "5"), ("c", "6")):
         (tmp_path / name).mkdir()
         out = tmp_path / name / "r.jsonl.gz"
-        argv = ["simulate", "--sites", str(sites), "--hours", "0.02", "--seed", seed,
-                "--inject", "front:at=30,ra=150,dec=35", "--out", str(out), "--quiet"]
+        argv = [
+            "simulate",
+            "--sites",
+            str(sites),
+            "--hours",
+            "0.02",
+            "--seed",
+            seed,
+            "--inject",
+            "front:at=30,ra=150,dec=35",
+            "--out",
+            str(out),
+            "--quiet",
+        ]
         assert _run_cli(argv, monkeypatch) == 0
         paths[name] = out
     a, b, c = (paths[k].read_bytes() for k in "abc")
@@ -163,8 +175,9 @@ def test_recv_order_nondecreasing_and_some_batches_overtaken(
 def _expected_counts(truth: dict[str, Any], batches: list[HitBatch]) -> dict[str, float]:
     """Expected background hits per site: the documented rate formula integrated over live
     time (Simpson's rule on each batch), written out here, not taken from the simulator."""
-    sc = build_scenario(shipped_registry(), seed=truth["seed"], start_ns=START_NS,
-                        duration_ns=150 * S)
+    sc = build_scenario(
+        shipped_registry(), seed=truth["seed"], start_ns=START_NS, duration_ns=150 * S
+    )
     params = {s.site_id: s for s in sc.sims}
     out: dict[str, float] = {}
     for site, bs in _by_site(batches).items():
@@ -176,8 +189,9 @@ def _expected_counts(truth: dict[str, Any], batches: list[HitBatch]) -> dict[str
             ts = t / 1e9
             f = 1.0 + sum(
                 amp * np.sin(2 * np.pi * ts / per + ph)
-                for amp, per, ph in zip(p.drift_amp, p.drift_period_s, p.drift_phase_rad,
-                                        strict=True)
+                for amp, per, ph in zip(
+                    p.drift_amp, p.drift_period_s, p.drift_phase_rad, strict=True
+                )
             )
             return p.rate_hz * (f + p.trend_per_h * (t - START_NS) / 3.6e12)
 
@@ -208,8 +222,17 @@ def test_background_rate_over_live_time_matches_configured(
 
 def test_rate_from_area_for_sites_outside_the_scenario(tmp_path: Path) -> None:
     reg = SiteRegistry(
-        [Site(id="fallow-yard-9", lat_deg=51.0, lon_deg=0.1, height_m=20.0,
-              clock_sigma_ns=40.0, area_m2=0.02, kind="scintillator")]
+        [
+            Site(
+                id="fallow-yard-9",
+                lat_deg=51.0,
+                lon_deg=0.1,
+                height_m=20.0,
+                clock_sigma_ns=40.0,
+                area_m2=0.02,
+                kind="scintillator",
+            )
+        ]
     )
     sc = build_scenario(reg, seed=3, start_ns=START_NS, duration_ns=600 * S)
     sc = dataclasses.replace(
@@ -228,8 +251,9 @@ def test_dead_time_shows_as_gaps_between_live_intervals(tmp_path: Path) -> None:
     reg = shipped_registry().subset(["kestrel-ridge", "orchard-5"])
     sc = build_scenario(reg, seed=2, start_ns=START_NS, duration_ns=300 * S)
     busy = tuple(
-        dataclasses.replace(s, outages_per_day=1500.0, outage_median_s=4.0, outage_min_s=1.0,
-                            outage_max_s=20.0)
+        dataclasses.replace(
+            s, outages_per_day=1500.0, outage_median_s=4.0, outage_min_s=1.0, outage_max_s=20.0
+        )
         for s in sc.sims
     )
     sim = simulate(dataclasses.replace(sc, sims=busy))
@@ -239,8 +263,11 @@ def test_dead_time_shows_as_gaps_between_live_intervals(tmp_path: Path) -> None:
     for site, bs in _by_site(_read(out, reg)).items():
         dead = [tuple(x) for x in truth["dead_time"][site]]
         assert len(dead) >= 3, site  # 1500/day over 300 s: ~5 expected
-        gaps = [(x.live_end, y.live_start) for x, y in itertools.pairwise(bs)
-                if y.live_start > x.live_end]
+        gaps = [
+            (x.live_end, y.live_start)
+            for x, y in itertools.pairwise(bs)
+            if y.live_start > x.live_end
+        ]
         if bs[0].live_start > START_NS:
             gaps.insert(0, (START_NS, bs[0].live_start))
         if bs[-1].live_end < START_NS + 300 * S:
@@ -278,9 +305,11 @@ def test_front_hits_follow_one_plane_front(
         assert s.clock_sigma_ns <= 1e4  # GPS-timed
         assert (h["site"], h["t_ns"]) in recorded
         loc = EarthLocation.from_geodetic(s.lon_deg * u.deg, s.lat_deg * u.deg, s.height_m * u.m)
-        alt = SkyCoord(ra=spec.ra_deg * u.deg, dec=spec.dec_deg * u.deg).transform_to(
-            AltAz(obstime=obstime, location=loc)
-        ).alt.deg
+        alt = (
+            SkyCoord(ra=spec.ra_deg * u.deg, dec=spec.dec_deg * u.deg)
+            .transform_to(AltAz(obstime=obstime, location=loc))
+            .alt.deg
+        )
         assert alt > 10.0, (h["site"], alt)  # source above the site's horizon
         t.append(h["t_ns"])
         r.append([loc.x.to_value(u.m), loc.y.to_value(u.m), loc.z.to_value(u.m)])
@@ -390,7 +419,10 @@ def test_injection_defaults() -> None:
     assert isinstance(f, FrontSpec) and (f.n_sites, f.min_elev_deg) == (6, 10.0)
     b = parse_injection("burst:at=1200,sites=20,boost=0.5,dur=30")
     assert isinstance(b, BurstSpec) and (b.n_sites, b.boost, b.dur_s, b.pick) == (
-        20, 0.5, 30.0, "rate"
+        20,
+        0.5,
+        30.0,
+        "rate",
     )
 
 
@@ -407,11 +439,17 @@ def test_injection_defaults() -> None:
     ],
 )
 def test_cli_bad_values_exit_2_naming_them(
-    option: str, value: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+    option: str,
+    value: str,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
     capsys: pytest.CaptureFixture[str],
 ) -> None:
-    args = {"--sites": str(REPO / "replay_data" / "network.toml"), "--hours": "0.01",
-            "--out": str(tmp_path / "r.jsonl")}
+    args = {
+        "--sites": str(REPO / "replay_data" / "network.toml"),
+        "--hours": "0.01",
+        "--out": str(tmp_path / "r.jsonl"),
+    }
     args[option] = value
     argv = ["simulate", *[x for kv in args.items() for x in kv], "--quiet"]
     assert _run_cli(argv, monkeypatch) == 2
@@ -427,8 +465,17 @@ def test_cli_help_describes_every_option(capsys: pytest.CaptureFixture[str]) -> 
         parser.parse_args(["simulate", "--help"])
     assert exc.value.code == 0
     text = capsys.readouterr().out
-    for opt in ("--sites", "--hours", "--out", "--seed", "--inject", "--start",
-                "--late-fraction", "front:at=SEC,ra=DEG,dec=DEG", "burst:at=SEC"):
+    for opt in (
+        "--sites",
+        "--hours",
+        "--out",
+        "--seed",
+        "--inject",
+        "--start",
+        "--late-fraction",
+        "front:at=SEC,ra=DEG,dec=DEG",
+        "burst:at=SEC",
+    ):
         assert opt in text
 
 

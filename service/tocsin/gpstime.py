@@ -33,7 +33,7 @@ def gps_ns_to_time(ns: GpsNs) -> Time:
 
 
 def gps_ns_to_utc_iso(ns: GpsNs) -> str:
-    """ISO 8601 UTC string with 9 decimals and a trailing ``Z``, e.g. ``2017-01-01T00:00:00.000000000Z``."""
+    """ISO 8601 UTC with 9 decimals and a ``Z``: ``2017-01-01T00:00:00.000000000Z``."""
     t = gps_ns_to_time(ns).utc
     t.precision = 9
     with warnings.catch_warnings():

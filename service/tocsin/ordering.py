@@ -16,9 +16,10 @@ Rules, per batch:
   their interval is dead time for the engine.
 * **gaps** — a jump in ``seq`` is a loss until the missing batch turns up.
 
-The watermark ``W = now - L`` advances with each arrival (and with
-:meth:`Orderer.release` on idle ticks); everything before it is final and goes
-to the engine as one :class:`Block`.
+The watermark ``W = now - L`` (rounded down to a multiple of ``quantum_ns``,
+the engine's bin width, since the engine only judges whole bins) advances with
+each arrival (and with :meth:`Orderer.release` on idle ticks); everything
+before it is final and goes to the engine as one :class:`Block`.
 """
 
 from __future__ import annotations
@@ -55,9 +56,12 @@ class Verdict:
 class Orderer:
     """Reorders accepted batches into blocks behind a watermark ``now - lateness``."""
 
-    def __init__(self, n_sites: int, *, lateness_ns: int) -> None:
+    def __init__(self, n_sites: int, *, lateness_ns: int, quantum_ns: int = 1) -> None:
         if lateness_ns < 0:
             raise ValueError(f"lateness_ns={lateness_ns} must be >= 0")
+        if quantum_ns <= 0:
+            raise ValueError(f"quantum_ns={quantum_ns} must be > 0")
+        self.quantum_ns = quantum_ns
         self.n_sites = n_sites
         self.lateness_ns = lateness_ns
         self.watermark: GpsNs | None = None
@@ -125,7 +129,8 @@ class Orderer:
         if now is None:
             return None
         self._now = now
-        return self._release_to(now - self.lateness_ns)
+        w = now - self.lateness_ns
+        return self._release_to(w - w % self.quantum_ns)
 
     def flush(self) -> Block | None:
         """Release everything pending (end of input)."""

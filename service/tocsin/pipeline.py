@@ -42,10 +42,19 @@ class Pipeline:
         cfg: EngineConfig,
         *,
         candidate_far_per_year: float | None = None,
+        release_every_s: float | None = None,
     ) -> None:
+        """``release_every_s``: how often data goes to the engine (default: every
+        exposure bin, for the lowest latency). Replay uses longer blocks for speed;
+        the engine's output does not depend on block length."""
         self.registry = registry
         self.engine = Engine(registry, cfg, candidate_far_per_year=candidate_far_per_year)
-        self.orderer = Orderer(len(registry), lateness_ns=round(cfg.lateness_s * NS_PER_S))
+        self.orderer = Orderer(
+            len(registry),
+            lateness_ns=round(cfg.lateness_s * NS_PER_S),
+            quantum_ns=self.engine.bin_ns
+            * max(1, round((release_every_s or 0.0) / cfg.rate.bin_s)),
+        )
         self.counters = IntakeCounters()
 
     def offer(self, item: HitBatch | Rejected) -> list[Candidate]:

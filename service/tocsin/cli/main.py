@@ -35,7 +35,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Coincidence and excess search over networks of particle detectors.",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for name, module in COMMANDS.items():
+    for module in COMMANDS.values():
         importlib.import_module(module).add_parser(sub)
     return parser
 
@@ -55,8 +55,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"tocsin {args.command}: interrupted", file=sys.stderr)
         return EXIT_FAILURE
-    except Exception as exc:  # noqa: BLE001 - last-resort report, exit 1
-        print(f"tocsin {args.command}: internal error: {type(exc).__name__}: {exc}", file=sys.stderr)
+    except Exception as exc:
+        print(
+            f"tocsin {args.command}: internal error: {type(exc).__name__}: {exc}", file=sys.stderr
+        )
         return EXIT_FAILURE
 
 

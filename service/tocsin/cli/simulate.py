@@ -176,4 +176,3 @@ def _float_option(name: str, text: str) -> float:
 
 def _indent(text: str) -> str:
     return "\n".join("  " + line if line else "" for line in text.rstrip().splitlines())
-

@@ -116,7 +116,12 @@ class CoincidenceTrigger:
         return max(self.geom.ahead_ns)
 
     def tables(
-        self, rates_hz: F64Array, live_frac: F64Array, ok: BoolArray, *, extra_trial_rate_hz: float = 0.0
+        self,
+        rates_hz: F64Array,
+        live_frac: F64Array,
+        ok: BoolArray,
+        *,
+        extra_trial_rate_hz: float = 0.0,
     ) -> Tables:
         """Build the null tables for per-site ``rates_hz``, live fractions and usable mask."""
         n = self.n_sites
@@ -134,7 +139,11 @@ class CoincidenceTrigger:
             ratio = self.cfg.redundancy_ratio
             fresh = np.isnan(prev_e) | (e >= ratio * prev_e) | (e * ratio <= prev_e)
             enough = allowed.sum(axis=1) >= self.cfg.min_multiplicity - 1
-            active = ok & fresh & enough & (lam > 0)
+            # A site too busy to count as a neighbour at this scale does not seed
+            # either: its hits would re-find every cluster of quieter sites.
+            mean_w = (self.geom.width[k] * not_self).sum(axis=1) / max(n - 1, 1)
+            quiet = -np.expm1(-lam * mean_w) <= self.cfg.occupancy_cap
+            active = ok & fresh & enough & quiet & (lam > 0)
             prev_e = np.where(active, e, prev_e)
             pmf = poisson_binomial_pmf_rows(q)  # (N, N + 1)
             tail_ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]
@@ -168,7 +177,9 @@ class CoincidenceTrigger:
         counts_as_nb = st.q.sum(axis=0) > 0
         sub = np.flatnonzero(counts_as_nb[site])
         t_sub, s_sub = t[sub], site[sub]
-        pr = window_pairs(t_sub, t[seed_pos], back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k])
+        pr = window_pairs(
+            t_sub, t[seed_pos], back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k]
+        )
         s_seed = site[seed_pos][pr.seed]
         s_nb = s_sub[pr.nb]
         d = (t_sub[pr.nb] - t[seed_pos][pr.seed]).astype(np.float64)
@@ -176,12 +187,22 @@ class CoincidenceTrigger:
         hi = self.geom.hi[k][s_seed, s_nb]
         keep = (st.q[s_seed, s_nb] > 0) & (d >= lo) & (d <= hi)
         g_seed, g_nb, s_seed, s_nb, d, lo = (
-            pr.seed[keep], pr.nb[keep], s_seed[keep], s_nb[keep], d[keep], lo[keep]
+            pr.seed[keep],
+            pr.nb[keep],
+            s_seed[keep],
+            s_nb[keep],
+            d[keep],
+            lo[keep],
         )
         # Earliest hit per (seed, neighbour site): pairs are in (seed, time) order.
         _, first = np.unique(g_seed * self.n_sites + s_nb, return_index=True)
         g_seed, g_nb, s_seed, s_nb, d, lo = (
-            g_seed[first], g_nb[first], s_seed[first], s_nb[first], d[first], lo[first]
+            g_seed[first],
+            g_nb[first],
+            s_seed[first],
+            s_nb[first],
+            d[first],
+            lo[first],
         )
         lam = tables.rates_per_ns[s_nb]
         w = self.geom.width[k][s_seed, s_nb]
@@ -191,7 +212,7 @@ class CoincidenceTrigger:
         kk = np.bincount(g_seed, minlength=n_seed)
         x = -np.bincount(g_seed, weights=log_u, minlength=n_seed)
         ss = site[seed_pos]
-        p = st.tail_gt[ss, kk] + st.point[ss, kk] * fisher_combined_sf(x, kk)
+        p = st.tail_gt[ss, kk] + st.point[ss, kk] * fisher_combined_sf(-x, kk)
         p = np.clip(p, 0.0, 1.0)
         passing = (p <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
         idx = np.flatnonzero(passing)

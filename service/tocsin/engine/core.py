@@ -15,8 +15,10 @@ import numpy as np
 
 from tocsin.engine.block import Block
 from tocsin.engine.coincidence import CoincidenceTrigger, SeedResult, Tables
+from tocsin.engine.direction import fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
 from tocsin.engine.exposure import BinStore
+from tocsin.engine.front import FrontResult, FrontSearch
 from tocsin.engine.merge import Decision, Merger
 from tocsin.engine.rates import background_rates
 from tocsin.model.candidate import Candidate
@@ -24,6 +26,11 @@ from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
 from tocsin.types import NS_PER_S, SECONDS_PER_YEAR, GpsNs, I32Array, I64Array
 
+MAX_REPORTED_ERR_DEG = 60.0
+"""A fitted direction with a larger 1-sigma error radius (deg) says nothing; not reported."""
+DIRECTION_MAX_FAR_PER_YEAR = 1.0e4
+"""Directions are fitted for candidates at or below this FAR (about one an hour);
+weaker ones (seen only with a loose ``--candidate-far``) skip the ~4 ms fit."""
 RATE_UPDATE_S = 60.0
 """Coincidence rates are re-estimated once per this many seconds of data (s)."""
 
@@ -61,6 +68,17 @@ class Engine:
         self.bg_bins = math.ceil(cfg.rate.background_s / cfg.rate.bin_s)
         self.update_bins = max(1, round(RATE_UPDATE_S / cfg.rate.bin_s))
         self.coinc = CoincidenceTrigger(registry, cfg.coincidence)
+        self.front = FrontSearch(registry, cfg.coincidence)
+        # (statistic, scale index, scale s, how far ahead of a seed its slots reach)
+        self._evals: list[tuple[str, int, float, int]] = [
+            ("sites", k, w, a)
+            for k, (w, a) in enumerate(
+                zip(cfg.coincidence.scales_s, self.coinc.geom.ahead_ns, strict=True)
+            )
+        ]
+        if cfg.coincidence.front_scales_s:
+            # one evaluator for all front scales: triples are solved once
+            self._evals.append(("front", -1, 0.0, max(self.front.ahead_ns)))
         self.excess = ExcessTrigger(n, registry.ids, cfg.excess, cfg.rate, bin_ns=self.bin_ns)
         ahead_bins = math.ceil(self.coinc.max_ahead_ns / self.bin_ns) + 1
         excess_bins = math.ceil(max(cfg.excess.scales_s, default=0.0) / cfg.rate.bin_s)
@@ -68,7 +86,7 @@ class Engine:
         self.store = BinStore(n, bin_ns=self.bin_ns, capacity=capacity)
         self._t: I64Array = np.zeros(0, dtype=np.int64)
         self._s: I32Array = np.zeros(0, dtype=np.int32)
-        self._prog: list[GpsNs | None] = [None] * len(cfg.coincidence.scales_s)
+        self._prog: list[GpsNs | None] = [None] * len(self._evals)
         self._tables: dict[tuple[int, bytes], Tables] = {}
         horizon = 2 * self.coinc.max_ahead_ns + 2 * excess_bins * self.bin_ns + 2 * self.bin_ns
         self.merger = Merger(horizon_ns=horizon)
@@ -82,7 +100,8 @@ class Engine:
         revised candidates, in the order they became ready."""
         if self.t_end is not None and block.t_start < self.t_end:
             raise ValueError(
-                f"block starts at {block.t_start}, before the end of the previous one ({self.t_end})"
+                f"block starts at {block.t_start}, "
+                f"before the end of the previous one ({self.t_end})"
             )
         self.t_end = block.t_end
         if self._first_bin is None:
@@ -115,7 +134,9 @@ class Engine:
                 guard_bins=0,
                 min_live_fraction=self.cfg.rate.min_live_s / self.cfg.rate.background_s,
             )
-            tab = self.coinc.tables(est.rate_hz, np.round(live, 2), est.ok)
+            lf = np.round(live, 2)
+            extra = self.front.trial_rate_hz(np.where(est.ok, est.rate_hz, 0.0) * 1e-9, lf)
+            tab = self.coinc.tables(est.rate_hz, lf, est.ok, extra_trial_rate_hz=extra)
             if len(self._tables) > 64:
                 self._tables.clear()
             self._tables[key] = tab
@@ -127,14 +148,13 @@ class Engine:
         # The first rate epoch needs some history; sites without enough live time
         # in their background stretch are left out by background_rates (``ok``).
         first_ok_bin = -(-((self._first_bin or 0) + 1) // self.update_bins) * self.update_bins
-        for k, ahead in enumerate(self.coinc.geom.ahead_ns):
+        for e, (stat, k, w_s, ahead) in enumerate(self._evals):
             limit = min(done_ns, t_end - ahead)
-            start = self._prog[k]
+            start = self._prog[e]
             if start is None:
-                start = first_ok_bin * self.bin_ns if self._t.size == 0 else int(self._t[0])
-                start = max(start, first_ok_bin * self.bin_ns)
+                start = first_ok_bin * self.bin_ns
             if limit <= start:
-                self._prog[k] = start
+                self._prog[e] = start
                 continue
             b = start // self.bin_ns
             while b * self.bin_ns < limit:
@@ -146,23 +166,32 @@ class Engine:
                 hi_t = min(limit, b_end * self.bin_ns)
                 i0 = int(np.searchsorted(self._t, lo_t, side="left"))
                 i1 = int(np.searchsorted(self._t, hi_t, side="left"))
-                if i1 > i0:
+                if i1 > i0 and tab.trial_rate_hz > 0:
                     self.counters.seeds_evaluated += i1 - i0
                     p_max = self.far_threshold / (tab.trial_rate_hz * SECONDS_PER_YEAR)
-                    res = self.coinc.evaluate(self._t, self._s, i0, i1, tab, k, p_max=p_max)
-                    out += self._coinc_decisions(res, tab, ahead)
+                    if stat == "sites":
+                        res = self.coinc.evaluate(self._t, self._s, i0, i1, tab, k, p_max=p_max)
+                        out += self._coinc_decisions(stat, res, tab, w_s, ahead)
+                    else:
+                        fronts = self.front.evaluate(
+                            self._t, self._s, i0, i1, tab.rates_per_ns, p_max=p_max
+                        )
+                        for fr in fronts:
+                            w_f = self.cfg.coincidence.front_scales_s[fr.scale_index]
+                            out += self._coinc_decisions(stat, fr, tab, w_f, ahead)
                 b = b_end
-            self._prog[k] = limit
+            self._prog[e] = limit
         return out
 
-    def _coinc_decisions(self, res: SeedResult, tab: Tables, ahead: int) -> list[Decision]:
+    def _coinc_decisions(
+        self, stat: str, res: SeedResult | FrontResult, tab: Tables, w_s: float, ahead: int
+    ) -> list[Decision]:
         out: list[Decision] = []
         ids = self.registry.ids
-        w_s = float(self.cfg.coincidence.scales_s[res.scale_index])
         for g in range(res.seed_idx.size):
             si = int(res.seed_idx[g])
             nb = res.nb_idx[res.nb_seed == g]
-            idx = np.concatenate([[si], nb])
+            idx = np.concatenate([[si], nb]).astype(np.int64)
             idx = idx[np.argsort(self._t[idx], kind="stable")]
             t_hits = [int(x) for x in self._t[idx]]
             s_hits = [int(x) for x in self._s[idx]]
@@ -171,7 +200,7 @@ class Engine:
             t_seed = int(self._t[si])
             cand = Candidate(
                 trigger="coincidence",
-                statistic="sites",
+                statistic=stat,
                 time_gps_ns=t_seed,
                 window_s=w_s,
                 sites=[ids[s] for s in s_hits],
@@ -181,16 +210,38 @@ class Engine:
                 hit_times_ns=t_hits,
                 details={"trial_rate_hz": tab.trial_rate_hz},
             )
+            if far <= DIRECTION_MAX_FAR_PER_YEAR:
+                self._add_direction(cand, np.asarray(s_hits), self._t[idx])
             ready = max(t_seed + ahead, (t_seed // self.bin_ns + 1) * self.bin_ns)
-            keys = frozenset(zip(s_hits, t_hits, strict=True))
+            # Merged only with decisions from the same seed hit (other scales and
+            # statistics): a chain of seeds inside one cluster are separate trials in
+            # the FAR, so they stay separate candidates (see merge.py).
+            keys = frozenset([(int(self._s[si]), t_seed)])
             out.append(Decision(cand, ready, hit_keys=keys))
-            self._count("coincidence/sites")
+            self._count(f"coincidence/{stat}")
         return out
+
+    def _add_direction(self, cand: Candidate, sites: I64Array, t: I64Array) -> None:
+        """Plane-front fit for >= 3 non-collinear sites; nothing when degenerate."""
+        if len(set(sites.tolist())) != sites.size or sites.size < 3:
+            return
+        fit = fit_front(self.registry.ecef_m[sites], t, self.registry.clock_sigma_ns[sites])
+        if fit is None or not np.isfinite(fit.err_deg) or fit.err_deg > MAX_REPORTED_ERR_DEG:
+            return
+        ra, dec = front_radec(fit)
+        cand.ra_deg, cand.dec_deg, cand.err_deg = ra, dec, float(fit.err_deg)
+        cand.details["front_chi2"] = float(fit.chi2)
+        cand.details["front_ndof"] = int(fit.ndof)
+        cand.details["front_t0_gps_ns"] = int(fit.t0_ns)
+        if fit.ambiguous:
+            cand.details["direction_ambiguous"] = True
 
     def _excesses(self, t_end: GpsNs) -> list[Decision]:
         out: list[Decision] = []
         done_bin = t_end // self.bin_ns
-        for cand in self.excess.process(self.store, done_bin, far_threshold_per_year=self.far_threshold):
+        for cand in self.excess.process(
+            self.store, done_bin, far_threshold_per_year=self.far_threshold
+        ):
             start = int(cand.time_gps_ns)
             end = start + round(cand.window_s * NS_PER_S)
             key = f"{cand.statistic}:{','.join(cand.sites) if cand.statistic == 'site' else '*'}"

@@ -48,7 +48,8 @@ class BinStore:
             self.end_bin = b0
         if b0 < self.end_bin - 1:
             raise ValueError(
-                f"block starting in bin {b0} is older than the store's newest bin {self.end_bin - 1}"
+                f"block starting in bin {b0} is older than "
+                    f"the store's newest bin {self.end_bin - 1}"
             )
         # Zero the bins that are about to be (re)used, then advance.
         for b in range(max(self.end_bin, b1 - self.capacity), b1):
@@ -67,7 +68,13 @@ class BinStore:
         last = (end - 1) // bn
         nspan = np.maximum(last - first + 1, 0)
         keep = (end > start) & (nspan > 0)
-        site, start, end, first, nspan = site[keep], start[keep], end[keep], first[keep], nspan[keep]
+        site, start, end, first, nspan = (
+            site[keep],
+            start[keep],
+            end[keep],
+            first[keep],
+            nspan[keep],
+        )
         rep = np.repeat(np.arange(site.size), nspan)
         offs = np.arange(rep.size) - np.repeat(np.cumsum(nspan) - nspan, nspan)
         b = first[rep] + offs

@@ -1,7 +1,12 @@
 """One candidate per physical cluster: decisions that share hits or windows are merged.
 
-The same fluctuation is usually seen at several scales (and a coincidence also
-from its second hit). Decisions are taken in the order in which they become
+The same fluctuation is usually seen at several scales and by both
+statistics of a seed. Coincidence decisions merge when they come from the same
+seed hit; excess decisions when their windows overlap for the same site (or the
+network sum). A coincidence seen again from its second hit is a separate trial in
+the false alarm rate (whose expectation counts every seed), so it stays a separate
+candidate; merging it would make the rate conservative by the chain length.
+Decisions are taken in the order in which they become
 *ready* (the time their window's data was final, then FAR, then id), which is
 a property of the data alone, so the merged output is the same however the
 stream was cut into blocks. A decision that overlaps an emitted candidate with

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gzip
+import io
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -29,13 +30,11 @@ def open_text(path: str | Path, mode: str = "rt") -> IO[Any]:
     """Open a recording for reading or writing; ``.gz`` means gzip."""
     p = Path(path)
     if p.suffix == ".gz":
-        return gzip.open(p, mode, compresslevel=6) if "w" in mode else gzip.open(p, mode)
+        return gzip.open(p, mode)  # type: ignore[return-value]
     return open(p, mode, encoding="utf-8" if "b" not in mode else None)
 
 
-def read_recording(
-    path: str | Path, registry: SiteRegistry
-) -> Iterator[HitBatch | Rejected]:
+def read_recording(path: str | Path, registry: SiteRegistry) -> Iterator[HitBatch | Rejected]:
     """Yield each line of a recording as a validated batch or a :class:`Rejected` record.
 
     A bad line never stops the iteration: it is reported and reading goes on.
@@ -56,7 +55,9 @@ def decode_line(line: bytes, registry: SiteRegistry, *, line_no: int = 0) -> Hit
         return Rejected(line_no, "bad_json", "<line>", f"not JSON: {exc}")
     recv = obj.pop("recv_ns", None) if isinstance(obj, dict) else None
     if recv is not None and (not isinstance(recv, int) or isinstance(recv, bool) or recv < 0):
-        return Rejected(line_no, "bad_schema", "recv_ns", f"recv_ns {recv!r} is not a non-negative integer")
+        return Rejected(
+            line_no, "bad_schema", "recv_ns", f"recv_ns {recv!r} is not a non-negative integer"
+        )
     try:
         return parse_batch(obj, registry, recv_ns=recv)
     except BatchRejected as exc:
@@ -66,9 +67,20 @@ def decode_line(line: bytes, registry: SiteRegistry, *, line_no: int = 0) -> Hit
 def write_recording(path: str | Path, batches: Iterable[HitBatch]) -> int:
     """Write batches (in the given order) as a recording; returns the number of lines."""
     n = 0
-    with open_text(path, "wb") as fh:
-        for b in batches:
-            fh.write(orjson.dumps(b.to_json_obj()))
-            fh.write(b"\n")
-            n += 1
+    p = Path(path)
+    with open(p, "wb") as raw:
+        # gzip with no name and no time stamp in its header: same input, same bytes
+        fh: gzip.GzipFile | io.BufferedWriter = (
+            gzip.GzipFile(filename="", mode="wb", fileobj=raw, mtime=0)
+            if p.suffix == ".gz"
+            else raw
+        )
+        try:
+            for b in batches:
+                fh.write(orjson.dumps(b.to_json_obj()))
+                fh.write(b"\n")
+                n += 1
+        finally:
+            if fh is not raw:
+                fh.close()
     return n

@@ -99,12 +99,18 @@ def parse_batch(
     equal the batch's ``site``. Raises :class:`BatchRejected` naming the field.
     """
     if not isinstance(obj, dict):
-        raise BatchRejected("bad_schema", "<root>", f"expected a JSON object, got {type(obj).__name__}")
+        raise BatchRejected(
+            "bad_schema", "<root>", f"expected a JSON object, got {type(obj).__name__}"
+        )
     if obj.get("v", None) != 1:
-        raise BatchRejected("bad_version", "v", f"schema version {obj.get('v')!r} is not supported (only 1)")
+        raise BatchRejected(
+            "bad_version", "v", f"schema version {obj.get('v')!r} is not supported (only 1)"
+        )
     t_raw = obj.get("t")
     if isinstance(t_raw, list) and len(t_raw) > MAX_HITS_PER_BATCH:
-        raise BatchRejected("too_large", "t", f"{len(t_raw)} hits exceed the limit of {MAX_HITS_PER_BATCH}")
+        raise BatchRejected(
+            "too_large", "t", f"{len(t_raw)} hits exceed the limit of {MAX_HITS_PER_BATCH}"
+        )
     try:
         m = _BatchV1.model_validate(obj)
     except ValidationError as exc:
@@ -112,21 +118,37 @@ def parse_batch(
         loc = ".".join(str(x) for x in err["loc"]) or "<root>"
         raise BatchRejected("bad_schema", loc, err["msg"]) from None
     if m.site not in registry:
-        raise BatchRejected("unknown_site", "site", f"site {m.site!r} is not in the registry ({len(registry)} sites known)")
+        raise BatchRejected(
+            "unknown_site",
+            "site",
+            f"site {m.site!r} is not in the registry ({len(registry)} sites known)",
+        )
     if topic_site is not None and topic_site != m.site:
-        raise BatchRejected("site_topic_mismatch", "site", f"batch names site {m.site!r} but arrived on the topic of {topic_site!r}")
+        raise BatchRejected(
+            "site_topic_mismatch",
+            "site",
+            f"batch names site {m.site!r} but arrived on the topic of {topic_site!r}",
+        )
     start, end = m.live
     if end < start:
-        raise BatchRejected("bad_live", "live", f"live interval [{start}, {end}) ends before it starts")
+        raise BatchRejected(
+            "bad_live", "live", f"live interval [{start}, {end}) ends before it starts"
+        )
     t = np.asarray(m.t, dtype=np.int64)
     if t.size:
         d = np.diff(t)
         if d.size and bool((d < 0).any()):
             k = int(np.flatnonzero(d < 0)[0])
-            raise BatchRejected("unsorted_hits", "t", f"t[{k + 1}]={int(t[k + 1])} is earlier than t[{k}]={int(t[k])}")
+            raise BatchRejected(
+                "unsorted_hits",
+                "t",
+                f"t[{k + 1}]={int(t[k + 1])} is earlier than t[{k}]={int(t[k])}",
+            )
         if int(t[0]) < start or int(t[-1]) >= end:
             bad = int(t[0]) if int(t[0]) < start else int(t[-1])
-            raise BatchRejected("hit_outside_live", "t", f"hit time {bad} is outside live [{start}, {end})")
+            raise BatchRejected(
+                "hit_outside_live", "t", f"hit time {bad} is outside live [{start}, {end})"
+            )
     amp: F64Array | None = None
     if m.amp is not None:
         if len(m.amp) != t.size:

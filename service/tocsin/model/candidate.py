@@ -58,8 +58,11 @@ class Candidate:
 
     def stable_id(self) -> str:
         """Deterministic id: same trigger, statistic, window, time and sites -> same id."""
-        key = f"{self.trigger}|{self.statistic}|{self.window_s!r}|{self.time_gps_ns}|{','.join(self.sites)}"
-        return f"{self.trigger[0]}-{self.time_gps_ns}-{hashlib.sha256(key.encode()).hexdigest()[:10]}"
+        sites = ",".join(self.sites)
+        key = f"{self.trigger}|{self.statistic}|{self.window_s!r}|{self.time_gps_ns}|{sites}"
+        return (
+            f"{self.trigger[0]}-{self.time_gps_ns}-{hashlib.sha256(key.encode()).hexdigest()[:10]}"
+        )
 
     @property
     def significance_sigma(self) -> float:

@@ -126,7 +126,5 @@ def _ecef(sites: Sequence[Site]) -> F64Array:
         height=[s.height_m for s in sites] * u.m,
         ellipsoid="WGS84",
     )
-    xyz = np.stack(
-        [loc.x.to_value(u.m), loc.y.to_value(u.m), loc.z.to_value(u.m)], axis=-1
-    )
+    xyz = np.stack([loc.x.to_value(u.m), loc.y.to_value(u.m), loc.z.to_value(u.m)], axis=-1)
     return np.asarray(xyz, dtype=float).reshape(len(sites), 3)

@@ -20,7 +20,7 @@ from tocsin.sim.injspec import INJECT_SYNTAX, BurstSpec, FrontSpec, InjectionSpe
 from tocsin.sim.network import SHIPPED_RATES_HZ, SHIPPED_SITES, shipped_registry
 from tocsin.sim.output import truth_path_for, truth_record, write_recording, write_truth
 from tocsin.sim.scenario import Scenario, SiteSim, build_scenario, derive_site_sim
-from tocsin.sim.simulation import Simulation, simulate
+from tocsin.sim.simulation import Simulation, iter_batches, simulate
 
 __all__ = [
     "INJECT_SYNTAX",
@@ -35,6 +35,7 @@ __all__ = [
     "SiteStream",
     "build_scenario",
     "derive_site_sim",
+    "iter_batches",
     "parse_injection",
     "shipped_registry",
     "simulate",

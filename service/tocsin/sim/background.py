@@ -116,9 +116,7 @@ def live_batches(
     first = phase_ns + batch_ns * ((start_ns - phase_ns) // batch_ns + 1)  # first edge > start
     grid = np.arange(first, end_ns, batch_ns, dtype=np.int64)
     edges = np.unique(
-        np.concatenate(
-            [np.array([start_ns, end_ns], dtype=np.int64), grid, dead_start, dead_end]
-        )
+        np.concatenate([np.array([start_ns, end_ns], dtype=np.int64), grid, dead_start, dead_end])
     )
     lo, hi = edges[:-1], edges[1:]
     if dead_start.size == 0:

@@ -143,9 +143,7 @@ def _number(
     bad_hi = x >= hi if hi_open else x > hi
     if not math.isfinite(x) or bad_lo or bad_hi:
         left, right = "(" if lo_open else "[", ")" if hi_open else "]"
-        raise ValueError(
-            f"injection {text!r}: {key}={raw!r} is not in {left}{lo:g}, {hi:g}{right}"
-        )
+        raise ValueError(f"injection {text!r}: {key}={raw!r} is not in {left}{lo:g}, {hi:g}{right}")
     return x
 
 

@@ -122,9 +122,7 @@ def truth_record(sim: Simulation, recording_name: str) -> dict[str, Any]:
 def write_truth(sim: Simulation, recording: str | Path) -> Path:
     """Write the truth file beside ``recording``; returns its path."""
     path = truth_path_for(recording)
-    data = orjson.dumps(
-        truth_record(sim, Path(recording).name), option=orjson.OPT_INDENT_2
-    )
+    data = orjson.dumps(truth_record(sim, Path(recording).name), option=orjson.OPT_INDENT_2)
     tmp = path.with_name(path.name + ".partial")
     tmp.write_bytes(data + b"\n")
     os.replace(tmp, path)

@@ -263,4 +263,3 @@ def build_scenario(
         duration_ns=duration_ns,
         late_fraction=late_fraction,
     )
-
