@@ -233,6 +233,7 @@ class Engine:
         cand.details["front_chi2"] = float(fit.chi2)
         cand.details["front_ndof"] = int(fit.ndof)
         cand.details["front_t0_gps_ns"] = int(fit.t0_ns)
+        cand.details["front_t0_sigma_ns"] = float(fit.t0_sigma_ns)
         if fit.ambiguous:
             cand.details["direction_ambiguous"] = True
 
