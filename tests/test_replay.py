@@ -9,8 +9,8 @@ from pathlib import Path
 
 import orjson
 import pytest
-
 from tests.netsim import run_pipeline
+
 from tocsin.cli.main import main
 from tocsin.io.recording import read_recording
 from tocsin.model.registry import SiteRegistry
@@ -49,8 +49,12 @@ def test_bad_lines_are_rejected_counted_and_the_rest_used(tmp_path: Path) -> Non
     rec = tmp_path / "mixed.jsonl"
     rec.write_bytes(b"\n".join(mixed) + b"\n")
     out_clean, out_mixed = tmp_path / "clean", tmp_path / "mixed"
-    assert main(["replay", str(REC), "--sites", str(SITES), "--out", str(out_clean), "--quiet"]) == 0
-    assert main(["replay", str(rec), "--sites", str(SITES), "--out", str(out_mixed), "--quiet"]) == 0
+    assert (
+        main(["replay", str(REC), "--sites", str(SITES), "--out", str(out_clean), "--quiet"]) == 0
+    )
+    assert (
+        main(["replay", str(rec), "--sites", str(SITES), "--out", str(out_mixed), "--quiet"]) == 0
+    )
     s_clean = json.loads((out_clean / "summary.json").read_text())
     s_mixed = json.loads((out_mixed / "summary.json").read_text())
     rej = s_mixed["rejected"]
@@ -85,8 +89,18 @@ def test_demo_replay_finds_the_injected_front(tmp_path: Path) -> None:
     hits = [c for c in cands if set(c["sites"]) == front_sites]
     assert hits and all(c["trigger"] == "coincidence" for c in hits)
     for c in cands:  # every record carries the contract's fields
-        for key in ("id", "trigger", "time_gps_ns", "time_utc", "window_s", "sites",
-                    "multiplicity", "p_value", "far_per_year", "significance_sigma"):
+        for key in (
+            "id",
+            "trigger",
+            "time_gps_ns",
+            "time_utc",
+            "window_s",
+            "sites",
+            "multiplicity",
+            "p_value",
+            "far_per_year",
+            "significance_sigma",
+        ):
             assert key in c
 
 
