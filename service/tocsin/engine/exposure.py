@@ -49,7 +49,7 @@ class BinStore:
         if b0 < self.end_bin - 1:
             raise ValueError(
                 f"block starting in bin {b0} is older than "
-                    f"the store's newest bin {self.end_bin - 1}"
+                f"the store's newest bin {self.end_bin - 1}"
             )
         # Zero the bins that are about to be (re)used, then advance.
         for b in range(max(self.end_bin, b1 - self.capacity), b1):

@@ -32,12 +32,12 @@ Calibration is checked against simulated background (``tests/test_calibration.py
 from __future__ import annotations
 
 from dataclasses import dataclass
-from math import comb
 
 import numpy as np
 from numpy.typing import NDArray
 
-from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
+from tocsin.engine.direction import seed_baselines, solve_triples
+from tocsin.engine.geometry import ellipsoid_up
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import fisher_combined_sf, pb_sf_table, poisson_binomial_pmf_rows
 from tocsin.model.config import CoincidenceConfig
@@ -46,6 +46,16 @@ from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I32Array, I64Array
 
 K_MAX = 12
 """Most neighbour hits per seed tried for fronts (the earliest in time)."""
+HORIZON_SLACK = 0.087
+"""A front may come from at most ~5 deg (sin 5 deg = 0.087) below a site's horizon:
+room for the direction error of a triple; from further below it would have crossed
+the Earth."""
+
+
+def _dot3(x: F64Array, y: F64Array) -> F64Array:
+    """Dot product over a last axis of length 3, broadcasting the others."""
+    out: F64Array = x[..., 0] * y[..., 0] + x[..., 1] * y[..., 1] + x[..., 2] * y[..., 2]
+    return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,6 +78,7 @@ class FrontSearch:
     def __init__(self, registry: SiteRegistry, cfg: CoincidenceConfig) -> None:
         self.cfg = cfg
         self.ecef = registry.ecef_m
+        self.up = ellipsoid_up(registry.ecef_m)
         self.sigma = registry.clock_sigma_ns
         self.n_sites = len(registry)
         self.eligible: BoolArray = registry.clock_sigma_ns <= cfg.front_max_clock_ns
@@ -186,28 +197,33 @@ class FrontSearch:
             dly[mg, b],
             tol_ns=self._tol_base + float(self.scales_ns[wide]),
         )
-        ok_t = np.flatnonzero(sol.valid)
+        # A front comes from above the seed's horizon (from below it would have
+        # crossed the Earth); mirror solutions more than HORIZON_SLACK below are dropped.
+        up_s = self.up[seed_site[mg]]
+        above = _dot3(sol.n, up_s[None]) >= -HORIZON_SLACK  # (2, M); NaN (invalid) -> False
+        ok_t = np.flatnonzero(above.any(axis=0))
         if ok_t.size == 0:
             return none
         mg, a, b = mg[ok_t], a[ok_t], b[ok_t]
-        sol = TripleSolution(
-            n=sol.n[:, ok_t],
-            valid=sol.valid[ok_t],
-            clamped=sol.clamped[ok_t],
-            n0=sol.n0[ok_t],
-            e3=sol.e3[ok_t],
-            alpha2=sol.alpha2[ok_t],
-            u_j=sol.u_j[ok_t],
-            u_k=sol.u_k[ok_t],
-        )
+        sol = sol.take(ok_t)
+        above = above[:, ok_t]
         sa, sb = nsite[mg, a], nsite[mg, b]
         pred = sol.predict(b_l[mg], self.sigma[seed_site[mg]], self.sigma[sa], self.sigma[sb])
-        base_delta = k_sig * np.sqrt(self.sigma[nsite[mg]][None] ** 2 + pred.sigma_ns**2)
-        abs_resid = np.abs(dly[mg][None] - pred.delay_ns)
-        others = valid[mg] & (nsite[mg] != sa[:, None]) & (nsite[mg] != sb[:, None])
-        same_before = (
-            (nsite[:, :, None] == nsite[:, None, :]) & np.triu(np.ones((kk, kk), dtype=bool), 1)
-        )[mg].astype(np.int8)
+        # one row per (mirror solution, triple) above the seed's horizon
+        rp, rm = np.nonzero(above)
+        n_r = sol.n[rp, rm]  # (R, 3)
+        nrow = nsite[mg[rm]]  # (R, kk)
+        base_delta = k_sig * np.sqrt(self.sigma[nrow] ** 2 + pred.sigma_ns[rp, rm] ** 2)
+        abs_resid = np.abs(dly[mg[rm]] - pred.delay_ns[rp, rm])
+        # a further site counts only if the source is above its horizon too
+        above_l = _dot3(n_r[:, None, :], self.up[nrow]) >= -HORIZON_SLACK
+        others = valid[mg[rm]] & (nrow != sa[rm][:, None]) & (nrow != sb[rm][:, None]) & above_l
+        # one hit per site: only seeds with two hits of one site need de-duplication
+        same_seed = (nsite[:, :, None] == nsite[:, None, :]) & np.triu(
+            np.ones((kk, kk), dtype=bool), 1
+        )
+        same_seed &= valid[:, :, None] & valid[:, None, :]
+        dup_rows = np.flatnonzero(same_seed.any(axis=(1, 2))[mg[rm]])
         # Triples valid only thanks to a wider scale's tolerance are not valid at a
         # narrower one (same first-order slack as solve_triples, per scale).
         norm0 = np.linalg.norm(sol.n0, axis=1)
@@ -215,128 +231,155 @@ class FrontSearch:
             np.einsum("mc,mc->m", sol.n0, sol.u_k)
         )
         excess_norm = np.where(sol.alpha2 < 0.0, norm0 - 1.0, 0.0)
+        ts = _Triples(
+            n_c=n_c,
+            kk=kk,
+            mg=mg,
+            a=a,
+            b=b,
+            rm=rm,
+            hit=hit,
+            members=sub,
+            seeds=seed_pos[cand],
+            others=others,
+            base_delta=base_delta,
+            abs_resid=abs_resid,
+            dup_rows=dup_rows,
+            same_before=same_seed[mg[rm[dup_rows]]].astype(np.int8),
+        )
         out: list[FrontResult] = []
         for f in range(n_f):
             tol_f = self._tol_base + float(self.scales_ns[f])
             trip_ok = excess_norm <= C_M_PER_NS * tol_f * xy / np.maximum(norm0, 1e-300)
-            in_slot = valid & (dly <= self.hi[f][seed_site[:, None], nsite])
-            res = self._at_scale(
-                f,
-                n_c,
-                kk,
-                mg,
-                a,
-                b,
-                hit,
-                sub,
-                seed_pos,
-                cand,
-                seed_site,
-                nsite,
-                in_slot,
-                others,
-                base_delta,
-                abs_resid,
-                same_before,
-                trip_ok,
-                p_max,
-            )
-            out.append(res)
+            hi_f = self.hi[f][seed_site[:, None], nsite]
+            in_slot = valid & (dly <= hi_f)
+            width = np.where(valid, hi_f - self.lo[seed_site[:, None], nsite], 1.0)
+            out.append(self._at_scale(f, ts, in_slot, width, trip_ok, p_max))
         return out
 
     def _at_scale(
         self,
         f: int,
-        n_c: int,
-        kk: int,
-        mg: I64Array,
-        a: I64Array,
-        b: I64Array,
-        hit: I64Array,
-        sub: I64Array,
-        seed_pos: I64Array,
-        cand: I64Array,
-        seed_site: I64Array,
-        nsite: I64Array,
+        ts: _Triples,
         in_slot: BoolArray,
-        others: BoolArray,
-        base_delta: F64Array,
-        abs_resid: F64Array,
-        same_before: NDArray[np.int8],
+        width: F64Array,
         trip_ok: BoolArray,
         p_max: float,
     ) -> FrontResult:
+        """The front statistic at scale ``f`` from triples solved once (see module doc)."""
         w_ns = float(self.scales_ns[f])
         empty = np.zeros(0, dtype=np.int64)
         none = FrontResult(f, empty, np.zeros(0), empty, empty, empty)
-        pair_in = in_slot[mg, a] & in_slot[mg, b] & trip_ok
-        if not pair_in.any():
+        mg, a, b, rm, kk = ts.mg, ts.a, ts.b, ts.rm, ts.kk
+        pair_ok = in_slot[mg, a] & in_slot[mg, b] & trip_ok  # per triple
+        if not pair_ok.any():
             return none
-        delta = base_delta + w_ns
-        oth = others & in_slot[mg] & pair_in[:, None]
-        cons = (abs_resid <= delta) & oth[None]
-        dup = np.einsum("pmj,mjk->pmk", cons.astype(np.int8), same_before) > 0
-        cons1 = cons & ~dup
-        mult = np.where(pair_in[None], 3 + cons1.sum(axis=-1), 0)  # (2, M)
-        u = np.where(cons1, abs_resid / delta, 1.0)
-        log_u = np.log(np.clip(u, 1e-300, 1.0)).sum(axis=-1)  # (2, M)
+        pair_in = pair_ok[rm]  # per row
+        delta = ts.base_delta + w_ns
+        oth = ts.others & in_slot[mg[rm]] & pair_in[:, None]
+        cons = (ts.abs_resid <= delta) & oth
+        n_cons = cons.sum(axis=-1)
+        if ts.dup_rows.size:  # an earlier consistent hit of the same site wins
+            sel = np.flatnonzero(n_cons[ts.dup_rows] >= 2)
+            if sel.size:
+                rows = ts.dup_rows[sel]
+                dup = np.einsum("rj,rjk->rk", cons[rows].astype(np.int8), ts.same_before[sel])
+                cons[rows] &= dup == 0
+                n_cons[rows] = cons[rows].sum(axis=-1)
+        mult = np.where(pair_in, 3 + n_cons, 0)  # (R,)
+        log_u = np.zeros(mult.size)
+        rc = np.flatnonzero(n_cons > 0)
+        log_u[rc] = np.where(
+            cons[rc], np.log(np.maximum(ts.abs_resid[rc] / delta[rc], 1e-300)), 0.0
+        ).sum(axis=-1)
         score = mult + 1e-6 * (-log_u)  # multiplicity first, then closeness of fit
-        flat_score = score.reshape(-1)
-        flat_seed = np.tile(mg, 2)
-        order = np.lexsort((-flat_score, flat_seed))
-        _, firsts = np.unique(flat_seed[order], return_index=True)
+        row_seed = mg[rm]
+        order = np.lexsort((-score, row_seed))
+        _, firsts = np.unique(row_seed[order], return_index=True)
         best = order[firsts]
-        best_seed = flat_seed[best]
-        best_m = mult.reshape(-1)[best]
+        best_m = mult[best]
         strong = best_m >= 4
         if not strong.any():
             return none
-        # null tail sums over every pair and solution of the strong seeds
-        seed_m = np.zeros(n_c, dtype=np.int64)
-        seed_m[best_seed] = best_m
-        rows_seed = np.tile(mg, 2)
-        rows_use = (seed_m[rows_seed] >= 4) & np.tile(pair_in, 2)
-        width = (
-            self.hi[f][seed_site[mg], :][np.arange(mg.size)[:, None], nsite[mg]]
-            - self.lo[seed_site[mg][:, None], nsite[mg]]
-        )
-        rho = np.where(oth[None], np.clip(2.0 * delta / width[None], 0.0, 1.0), 0.0)
-        rrho = rho.reshape(-1, kk)[rows_use]
-        rseed = rows_seed[rows_use]
-        tail = pb_sf_table(poisson_binomial_pmf_rows(rrho))
+        best, best_m = best[strong], best_m[strong]
+
+        def rho(rows: I64Array) -> F64Array:
+            """P(a uniform hit in its slot falls in the narrow slot), per row and hit."""
+            r: F64Array = np.where(
+                oth[rows], np.clip(2.0 * delta[rows] / width[row_seed[rows]], 0.0, 1.0), 0.0
+            )
+            return r
+
+        # Exact lower bound to skip seeds that cannot pass: the best row's own
+        # consistent sites give P(PB >= m-3) >= prod(rho) for that row, so
+        # E_m >= prod(rho) / C(m-1, 2) and p >= G * (1 - exp(-E_m)).
+        prod_b = np.prod(np.where(cons[best], rho(best), 1.0), axis=1)
+        c_m = (best_m - 1) * (best_m - 2) / 2.0
+        g_b = fisher_combined_sf(log_u[best], best_m - 3)
+        keep = g_b * -np.expm1(-prod_b / c_m) <= p_max
+        if not keep.any():
+            return none
+        best, best_m, c_m, g_b = best[keep], best_m[keep], c_m[keep], g_b[keep]
+        bs = row_seed[best]
+        # null tail sums over every (solution, pair) row of the surviving seeds
+        seed_m = np.zeros(ts.n_c, dtype=np.int64)
+        seed_m[bs] = best_m
+        rows_use = np.flatnonzero((seed_m[row_seed] >= 4) & pair_in)
+        rseed = row_seed[rows_use]
+        tail = pb_sf_table(poisson_binomial_pmf_rows(rho(rows_use)))
         m_r = seed_m[rseed]
         rix = np.arange(rseed.size)
-        e_m = np.bincount(rseed, weights=tail[rix, np.minimum(m_r - 3, kk + 1)], minlength=n_c)
-        e_m1 = np.bincount(rseed, weights=tail[rix, np.minimum(m_r - 2, kk + 1)], minlength=n_c)
-        bs = best_seed[strong]
-        mm = best_m[strong]
-        c_m = np.array([comb(int(x) - 1, 2) for x in mm], dtype=float)
-        c_m1 = np.array([comb(int(x), 2) for x in mm], dtype=float)
+        e_m = np.bincount(rseed, weights=tail[rix, np.minimum(m_r - 3, kk + 1)], minlength=ts.n_c)
+        e_m1 = np.bincount(rseed, weights=tail[rix, np.minimum(m_r - 2, kk + 1)], minlength=ts.n_c)
+        c_m1 = best_m * (best_m - 1) / 2.0
         p_ge = -np.expm1(-e_m[bs] / c_m)
         p_ge1 = -np.expm1(-e_m1[bs] / c_m1)
-        lu = log_u.reshape(-1)[best[strong]]
-        p = p_ge1 + np.maximum(p_ge - p_ge1, 0.0) * fisher_combined_sf(lu, mm - 3)
-        p = np.clip(p, 0.0, 1.0)
+        p = np.clip(p_ge1 + np.maximum(p_ge - p_ge1, 0.0) * g_b, 0.0, 1.0)
         ok = p <= p_max
         if not ok.any():
             return none
-        bs, mm, p = bs[ok], mm[ok], p[ok]
-        rows = best[strong][ok]
-        sol_i, trip = rows // mg.size, rows % mg.size
+        best, bs, best_m, p = best[ok], bs[ok], best_m[ok], p[ok]
         groups: list[I64Array] = []
         owners: list[I64Array] = []
         for j in range(bs.size):  # only passing seeds: few
-            tr = int(trip[j])
-            members = np.concatenate(
-                [[hit[mg[tr], a[tr]], hit[mg[tr], b[tr]]], hit[mg[tr]][cons1[sol_i[j], tr]]]
-            )
-            groups.append(sub[members].astype(np.int64))
+            tr = int(rm[best[j]])
+            row = ts.hit[mg[tr]]
+            members = np.concatenate([[row[a[tr]], row[b[tr]]], row[cons[best[j]]]])
+            groups.append(ts.members[members].astype(np.int64))
             owners.append(np.full(members.size, j, dtype=np.int64))
         return FrontResult(
             f,
-            seed_pos[cand[bs]],
+            ts.seeds[bs],
             p,
-            mm.astype(np.int64),
+            best_m.astype(np.int64),
             np.concatenate(owners),
             np.concatenate(groups),
         )
+
+
+@dataclass(frozen=True, slots=True)
+class _Triples:
+    """Triples of one evaluation, solved once and shared by every front scale.
+
+    ``mg``, ``a``, ``b`` (M,): seed row and the two partner columns of each triple;
+    ``hit`` (n_c, kk): stream index (into ``members``) of each neighbour hit;
+    ``rm`` (R,): the triple of each row (a mirror solution above the seed's horizon);
+    ``others`` (R, kk): neighbour hits at sites other than the triple's, with the
+    source above their horizon; ``base_delta``, ``abs_resid`` (R, kk): clock
+    tolerance k*sqrt(sigma_l^2 + sigma_pred^2) and |measured - predicted| delay, ns.
+    """
+
+    n_c: int
+    kk: int
+    mg: I64Array
+    a: I64Array
+    b: I64Array
+    rm: I64Array
+    hit: I64Array
+    members: I64Array
+    seeds: I64Array
+    others: BoolArray
+    base_delta: F64Array
+    abs_resid: F64Array
+    dup_rows: I64Array
+    same_before: NDArray[np.int8]
