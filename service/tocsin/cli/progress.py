@@ -1,4 +1,8 @@
-"""A dependency-free progress line on stderr for long runs."""
+"""A dependency-free progress display on stderr for long runs.
+
+On a terminal: one line redrawn in place, at most 4 times a second. Elsewhere
+(logs, CI): a plain line at every 10 %, once the run has taken more than 5 s.
+"""
 
 from __future__ import annotations
 
@@ -7,30 +11,45 @@ import time
 
 
 class Progress:
-    """Prints ``label  42% [####......]  12.3 s`` in place, at most 4 times a second."""
+    """``label  42% [############..................]  12.3 s``."""
 
     def __init__(self, total: int, *, enabled: bool = True, label: str = "") -> None:
         self.total = max(int(total), 1)
-        self.enabled = enabled and sys.stderr.isatty()
+        self.enabled = enabled
+        self.tty = sys.stderr.isatty()
         self.label = label
         self._t0 = time.monotonic()
         self._last = 0.0
+        self._last_decile = 0
 
-    def update(self, done: int) -> None:
+    def update(self, done: int, *, force: bool = False) -> None:
         if not self.enabled:
             return
         now = time.monotonic()
-        if now - self._last < 0.25:
-            return
-        self._last = now
         frac = min(max(done / self.total, 0.0), 1.0)
-        bar = "#" * int(frac * 30)
-        sys.stderr.write(f"\r{self.label}  {frac:4.0%} [{bar:<30}]  {now - self._t0:6.1f} s")
+        elapsed = now - self._t0
+        if self.tty:
+            if not force and now - self._last < 0.25:
+                return
+            self._last = now
+            bar = "#" * int(frac * 30)
+            sys.stderr.write(f"\r{self.label}  {frac:4.0%} [{bar:<30}]  {elapsed:6.1f} s")
+        else:
+            decile = int(frac * 10)
+            if decile <= self._last_decile or (elapsed < 5.0 and not force):
+                return
+            self._last_decile = decile
+            sys.stderr.write(f"{self.label}  {frac:4.0%}  {elapsed:6.1f} s\n")
         sys.stderr.flush()
 
     def done(self) -> None:
-        if self.enabled:
-            self.update(self.total)
-            self._last = 0.0
+        """Show 100 % (and end the terminal line)."""
+        if not self.enabled:
+            return
+        elapsed = time.monotonic() - self._t0
+        if self.tty:
+            self.update(self.total, force=True)
             sys.stderr.write("\n")
-            sys.stderr.flush()
+        elif elapsed >= 5.0 and self._last_decile < 10:
+            self.update(self.total, force=True)
+        sys.stderr.flush()
