@@ -2,7 +2,11 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from pathlib import Path
+
 import pytest
+from tests.mosquitto import MOSQUITTO, Mosquitto
 
 from tocsin.model.registry import Site, SiteRegistry
 
@@ -24,3 +28,16 @@ def small_registry() -> SiteRegistry:
             ),
         ]
     )
+
+
+@pytest.fixture
+def mosquitto(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Mosquitto]:
+    """A fresh Mosquitto on a free port (stopped after the test)."""
+    if not Path(MOSQUITTO).exists():
+        pytest.fail("mosquitto is not installed (apt-get install mosquitto); .ci/run installs it")
+    broker = Mosquitto(tmp_path_factory.mktemp("mosquitto"))
+    broker.start()
+    try:
+        yield broker
+    finally:
+        broker.stop()
