@@ -62,3 +62,33 @@ def utc_to_gps_ns(text: str) -> GpsNs:
 def time_to_gps_ns(t: Time) -> GpsNs:
     """Convert any astropy ``Time`` to GPS nanoseconds (rounded to the nearest ns)."""
     return utc_to_gps_ns(t.utc.isot)
+
+
+UNIX_AT_GPS_EPOCH_S = 315_964_800
+"""Unix time (s) of 1980-01-06T00:00:00 UTC, the GPS epoch."""
+
+_leap_cache: dict[int, int] = {}
+
+
+def gps_minus_unix_ns(unix_ns: int) -> int:
+    """GPS ns minus Unix ns at the given Unix time: the epoch offset plus the leap
+    seconds GPS has gained on UTC (18 s since 2017-01-01; astropy's table).
+
+    Cached per UTC day, so the live path reads a dict, not astropy.
+    """
+    day = unix_ns // (86400 * NS_PER_S)
+    off = _leap_cache.get(day)
+    if off is None:
+        t = Time(unix_ns // NS_PER_S, format="unix", scale="utc")
+        gps_s = round(float(t.gps))
+        off = (gps_s - unix_ns // NS_PER_S) * NS_PER_S
+        _leap_cache[day] = off
+    return off
+
+
+def gps_now_ns() -> GpsNs:
+    """The system clock as GPS nanoseconds (as good as the host's clock discipline)."""
+    import time
+
+    u = time.time_ns()
+    return u + gps_minus_unix_ns(u)
