@@ -56,16 +56,24 @@ class Pipeline:
             * max(1, round((release_every_s or 0.0) / cfg.rate.bin_s)),
         )
         self.counters = IntakeCounters()
+        self.last_status = ""
+        """What became of the last batch offered: accepted, duplicate, late or a
+        rejection reason."""
+        self.last_new_gaps = 0
 
     def offer(self, item: HitBatch | Rejected) -> list[Candidate]:
         """Take one decoded recording line or received message; return new candidates."""
         c = self.counters
         c.batches += 1
+        self.last_new_gaps = 0
         if isinstance(item, Rejected):
             c.rejected[item.reason] += 1
+            self.last_status = item.reason
             return []
         verdict = self.orderer.offer(item)
         c.new_gaps += verdict.new_gaps
+        self.last_new_gaps = verdict.new_gaps
+        self.last_status = verdict.status
         if verdict.status != "accepted":
             c.rejected[verdict.status if verdict.status == "late" else "duplicate_seq"] += 1
             return []

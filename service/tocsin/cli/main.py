@@ -19,6 +19,7 @@ EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 COMMANDS: dict[str, str] = {
     "simulate": "tocsin.cli.simulate",
     "replay": "tocsin.cli.replay",
+    "serve": "tocsin.cli.serve",
 }
 
 

@@ -24,7 +24,7 @@ from tocsin.engine.rates import background_rates
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
-from tocsin.types import NS_PER_S, SECONDS_PER_YEAR, GpsNs, I32Array, I64Array
+from tocsin.types import NS_PER_S, SECONDS_PER_YEAR, F64Array, GpsNs, I32Array, I64Array
 
 MAX_REPORTED_ERR_DEG = 60.0
 """A fitted direction with a larger 1-sigma error radius (deg) says nothing; not reported."""
@@ -93,6 +93,8 @@ class Engine:
         self.counters = EngineCounters()
         self.t_end: GpsNs | None = None
         self._first_bin: int | None = None
+        self.last_rates_hz: F64Array | None = None
+        """The latest per-site rate estimate (Hz; 0 for sites not taking part)."""
 
     # ------------------------------------------------------------------
     def process(self, block: Block) -> list[Candidate]:
@@ -135,6 +137,7 @@ class Engine:
                 min_live_fraction=self.cfg.rate.min_live_s / self.cfg.rate.background_s,
             )
             lf = np.round(live, 2)
+            self.last_rates_hz = np.where(est.ok, est.rate_hz, 0.0)
             extra = self.front.trial_rate_hz(np.where(est.ok, est.rate_hz, 0.0) * 1e-9, lf)
             tab = self.coinc.tables(est.rate_hz, lf, est.ok, extra_trial_rate_hz=extra)
             if len(self._tables) > 64:

@@ -58,6 +58,7 @@ class Merger:
         out: list[Candidate] = []
         for d in sorted(decisions, key=lambda d: (d.ready_ns, d.cand.far_per_year, d.cand.id)):
             self._evict(d.ready_ns)
+            d.cand.details["ready_gps_ns"] = int(d.ready_ns)
             hit = self._overlapping(d)
             if hit is None:
                 e = _Entry(d.cand, d.ready_ns, d.hit_keys, d.span)

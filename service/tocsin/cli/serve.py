@@ -1,0 +1,49 @@
+"""``tocsin serve``: the always-on service."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import signal
+from pathlib import Path
+from typing import Any
+
+from tocsin.live import logs
+from tocsin.live.service import Service
+from tocsin.model.service_config import load_service_config
+
+
+def add_parser(sub: Any) -> None:
+    p = sub.add_parser(
+        "serve",
+        help="the always-on service: MQTT in, candidates out",
+        description=(
+            "Subscribe to every site's hit batches over MQTT, validate them, journal them, "
+            "run the trigger engine (the same as `tocsin replay`) and write candidates to "
+            "DATA_DIR/candidates.jsonl. Prometheus metrics on the configured port. SIGTERM "
+            "drains, checkpoints and exits 0; a restart resumes from the checkpoint and journal."
+        ),
+    )
+    p.add_argument("--config", type=Path, required=True, help="service config (TOML)")
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+
+
+def run(args: argparse.Namespace) -> int:
+    cfg = load_service_config(args.config)
+    logs.setup(args.log_level)
+    return asyncio.run(_main(Service(cfg)))
+
+
+async def _main(service: Service) -> int:
+    stop = asyncio.Event()
+    loop = asyncio.get_running_loop()
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(sig, stop.set)
+    m = service.cfg.metrics
+    if m.port:
+        service.metrics.serve(m.host, m.port)
+    try:
+        await service.run(stop)
+    finally:
+        service.close()
+    return 0

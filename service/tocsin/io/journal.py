@@ -1,0 +1,116 @@
+"""The service's journal: every valid batch it received, in arrival order, on disk.
+
+Each line is a recording line (contract §4) with ``recv_ns``, so a journal is a
+recording: ``tocsin replay`` over it gives the live service's candidates. Lines
+are appended to segment files ``journal-<first recv_ns>.jsonl``; a new segment
+starts when one exceeds ``segment_bytes``. :meth:`Journal.sync` flushes and
+fsyncs; the service acknowledges MQTT messages only after that (group commit),
+so an acknowledged batch is never lost.
+
+A :class:`Position` (segment name, byte offset) marks how far a checkpoint got;
+:func:`read_from` yields the lines after it, for recovery.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import BinaryIO
+
+PREFIX = "journal-"
+SUFFIX = ".jsonl"
+
+
+@dataclass(frozen=True, slots=True)
+class Position:
+    """A place in the journal: segment file name and byte offset within it."""
+
+    segment: str
+    offset: int
+
+
+class Journal:
+    """Append-only, segmented, fsynced log of received batches."""
+
+    def __init__(self, directory: Path, *, segment_bytes: int = 256 * 1024 * 1024) -> None:
+        if segment_bytes < 1024:
+            raise ValueError(f"segment_bytes={segment_bytes} is too small (>= 1024)")
+        self.directory = directory
+        self.directory.mkdir(parents=True, exist_ok=True)
+        self.segment_bytes = segment_bytes
+        self._fh: BinaryIO | None = None
+        self._name: str | None = None
+        self._size = 0
+        self._dirty = False
+        segs = segments(directory)
+        if segs:
+            self._open(segs[-1].name)
+
+    def _open(self, name: str) -> None:
+        if self._fh is not None:
+            self._fh.close()
+        path = self.directory / name
+        fh = open(path, "ab")  # noqa: SIM115 - held open for the journal's life
+        self._size = fh.tell()
+        if self._size and not _ends_with_newline(path):
+            fh.write(b"\n")  # a torn last line from a crash: terminate it (reader skips it)
+            self._size += 1
+        self._fh, self._name = fh, name
+
+    def append(self, line: bytes, recv_ns: int) -> Position:
+        """Append one JSON line (without newline); returns the position after it."""
+        if self._fh is None or self._size >= self.segment_bytes:
+            self._open(f"{PREFIX}{recv_ns:020d}{SUFFIX}")
+        assert self._fh is not None and self._name is not None
+        self._fh.write(line)
+        self._fh.write(b"\n")
+        self._size += len(line) + 1
+        self._dirty = True
+        return Position(self._name, self._size)
+
+    @property
+    def position(self) -> Position | None:
+        """Position after the last appended line (None for an empty journal)."""
+        return None if self._name is None else Position(self._name, self._size)
+
+    def sync(self) -> None:
+        """Flush and fsync: everything appended so far survives a crash."""
+        if self._fh is not None and self._dirty:
+            self._fh.flush()
+            os.fsync(self._fh.fileno())
+            self._dirty = False
+
+    def close(self) -> None:
+        if self._fh is not None:
+            self.sync()
+            self._fh.close()
+            self._fh = None
+
+
+def segments(directory: Path) -> list[Path]:
+    """Segment files in order."""
+    return sorted(directory.glob(f"{PREFIX}*{SUFFIX}"))
+
+
+def read_from(directory: Path, pos: Position | None) -> Iterator[bytes]:
+    """Journal lines after ``pos`` (all of them for None), oldest first.
+
+    A torn line (no newline: the process died mid-write) is skipped.
+    """
+    for seg in segments(directory):
+        if pos is not None and seg.name < pos.segment:
+            continue
+        with open(seg, "rb") as fh:
+            if pos is not None and seg.name == pos.segment:
+                fh.seek(pos.offset)
+            for line in fh:
+                if line.endswith(b"\n") and line.strip():
+                    yield line.rstrip(b"\n")
+
+
+def _ends_with_newline(path: Path) -> bool:
+    with open(path, "rb") as fh:
+        fh.seek(-1, os.SEEK_END)
+        return fh.read(1) == b"\n"

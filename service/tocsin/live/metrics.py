@@ -1,0 +1,64 @@
+"""Prometheus metrics of the service, on their own registry (one per service object)."""
+
+from __future__ import annotations
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+
+LATENCY_BUCKETS_S = (0.05, 0.1, 0.25, 0.5, 1.0, 2.0, 3.0, 4.0, 5.0, 7.5, 10.0, 20.0, 60.0, 300.0)
+
+
+class Metrics:
+    """Every metric the service exports (names start with ``tocsin_``)."""
+
+    def __init__(self) -> None:
+        r = self.registry = CollectorRegistry()
+        self.batches = Counter(
+            "tocsin_batches_accepted", "Hit batches accepted", ["site"], registry=r
+        )
+        self.hits = Counter(
+            "tocsin_hits_accepted", "Hits in accepted batches", ["site"], registry=r
+        )
+        self.rejected = Counter(
+            "tocsin_batches_rejected", "Messages refused, by reason", ["reason"], registry=r
+        )
+        self.duplicates = Counter(
+            "tocsin_batches_duplicate", "Repeated sequence numbers dropped", ["site"], registry=r
+        )
+        self.gaps = Counter(
+            "tocsin_sequence_gaps",
+            "Sequence numbers skipped (lost until they turn up)",
+            ["site"],
+            registry=r,
+        )
+        self.late = Counter(
+            "tocsin_batches_late", "Batches later than the lateness allowance", ["site"], registry=r
+        )
+        self.rate = Gauge(
+            "tocsin_site_rate_hz", "Rolling rate estimate per site", ["site"], registry=r
+        )
+        self.live = Gauge(
+            "tocsin_site_live", "1 while the site reports, 0 when it dropped", ["site"], registry=r
+        )
+        self.candidates = Counter(
+            "tocsin_candidates", "Candidates written", ["trigger", "statistic"], registry=r
+        )
+        self.lag = Gauge(
+            "tocsin_processing_lag_seconds", "Wall clock minus the engine's watermark", registry=r
+        )
+        self.latency = Histogram(
+            "tocsin_candidate_latency_seconds",
+            "From the moment a candidate's window closed to the candidate being written",
+            buckets=LATENCY_BUCKETS_S,
+            registry=r,
+        )
+        self.journal_lines = Counter(
+            "tocsin_journal_lines", "Batches written to the journal", registry=r
+        )
+        self.checkpoints = Counter("tocsin_checkpoints", "Checkpoints written", registry=r)
+        self.connected = Gauge(
+            "tocsin_broker_connected", "1 while connected to the broker", registry=r
+        )
+
+    def serve(self, host: str, port: int) -> None:
+        """Expose ``/metrics`` on ``host:port`` (a daemon thread of prometheus_client)."""
+        start_http_server(port, addr=host, registry=self.registry)

@@ -1,0 +1,385 @@
+"""``tocsin serve``: MQTT in, the same pipeline as replay, candidates out.
+
+What happens to a message on ``{root}/site/<id>/hits``:
+
+1. refused with a reason if larger than ``max_message_bytes``, not JSON, or not
+   a valid v1 batch of that topic's site (counted by reason, logged to
+   ``rejected.jsonl``, acknowledged — a bad message is never redelivered);
+2. given its *arrival time* ``recv = max(previous recv, last tick,
+   min(wall clock, batch end))`` — after a restart the broker's backlog is
+   data that was on time when it reached the broker, so it is taken as such
+   instead of being thrown away as late; the journal records this value, so
+   replaying the journal decides exactly as the live service did;
+3. appended to the journal, which is fsynced in group commits (every 50 ms);
+   only then is the MQTT message acknowledged (paho's manual acknowledgement:
+   a crash before that makes the broker send it again, and the ordering stage
+   drops the repeat by ``seq``);
+4. offered to the :class:`~tocsin.pipeline.Pipeline`; new candidates go to
+   ``candidates.jsonl`` (an id and revision is written once, ever).
+
+Idle ticks advance the watermark by the wall clock once the service has caught
+up with real time. A checkpoint (pipeline + journal position) is written every
+``CHECKPOINT_EVERY_S`` and on SIGTERM; at start the service loads it and replays
+the journal after it, so a restart resumes with every rate estimate, and a
+crash loses nothing that was acknowledged.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import dataclasses
+import logging
+import random
+import ssl
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import aiomqtt
+import orjson
+
+from tocsin.errors import BatchRejected
+from tocsin.gpstime import gps_now_ns
+from tocsin.io import checkpoint
+from tocsin.io.journal import Journal, read_from
+from tocsin.io.recording import decode_line
+from tocsin.live import topics
+from tocsin.live.logs import event
+from tocsin.live.metrics import Metrics
+from tocsin.model.batch import HitBatch, parse_batch
+from tocsin.model.candidate import Candidate
+from tocsin.model.registry import SiteRegistry
+from tocsin.model.service_config import BrokerConfig, ServiceConfig
+from tocsin.pipeline import Pipeline
+from tocsin.types import NS_PER_S
+
+log = logging.getLogger("tocsin.serve")
+
+SYNC_EVERY_S = 0.05
+"""Group commit: the journal is fsynced (and messages acknowledged) this often (s)."""
+TICK_EVERY_S = 0.25
+"""Idle ticks advance the watermark this often (s)."""
+IDLE_TICK_AFTER_S = 10.0
+"""With no message for this long (s), ticks advance the watermark even when behind."""
+CHECKPOINT_EVERY_S = 300.0
+QUEUE_MAX = 20_000
+"""Messages waiting for the pipeline; beyond this the reader waits (the broker holds the rest)."""
+
+
+class Service:
+    """The service's state and its synchronous message handling (no I/O waits)."""
+
+    def __init__(self, cfg: ServiceConfig, *, clock: Callable[[], int] = gps_now_ns) -> None:
+        self.cfg = cfg
+        self.broker = cfg.broker or BrokerConfig()
+        self.root = self.broker.topic_root
+        self.registry = SiteRegistry.from_toml(cfg.registry)
+        self.clock = clock
+        self.metrics = Metrics()
+        data = cfg.data_dir
+        data.mkdir(parents=True, exist_ok=True)
+        self.journal = Journal(data / "journal")
+        self.ckpt_path = data / "checkpoint.pickle"
+        self.cand_path = data / "candidates.jsonl"
+        self._written = _written_keys(self.cand_path)
+        self._cand_fh = open(self.cand_path, "ab")  # noqa: SIM115 - closed in close()
+        self._rej_fh = open(data / "rejected.jsonl", "ab")  # noqa: SIM115
+        self.key = checkpoint.state_key(self.registry, cfg.engine)
+        self.lateness_ns = round(cfg.engine.lateness_s * NS_PER_S)
+        self._last_recv = 0
+        self._last_tick = 0
+        self._max_live_end = 0
+        self._last_msg_wall = 0
+        self._last_ckpt = time.monotonic()
+        self.pipeline = self._restore()
+
+    # -- start and stop ------------------------------------------------------
+    def _restore(self) -> Pipeline:
+        ck = checkpoint.load(self.ckpt_path, self.key)
+        pipe = ck.pipeline if ck is not None else Pipeline(self.registry, self.cfg.engine)
+        n = 0
+        for line in read_from(self.journal.directory, ck.position if ck else None):
+            item = decode_line(line, self.registry)
+            if isinstance(item, HitBatch) and item.recv_ns is not None:
+                self._last_recv = max(self._last_recv, item.recv_ns)
+                self._max_live_end = max(self._max_live_end, item.live_end)
+            self._write(pipe.offer(item), live=False)
+            n += 1
+        event(
+            log,
+            "restored",
+            checkpoint=ck is not None,
+            journal_lines_replayed=n,
+            watermark=pipe.orderer.watermark,
+        )
+        return pipe
+
+    def save_checkpoint(self) -> None:
+        """Sync the journal and write the checkpoint (between messages only)."""
+        self.journal.sync()
+        checkpoint.save(
+            self.ckpt_path, checkpoint.Checkpoint(self.pipeline, self.journal.position, self.key)
+        )
+        self._last_ckpt = time.monotonic()
+        self.metrics.checkpoints.inc()
+
+    def close(self) -> None:
+        self.journal.close()
+        self._cand_fh.close()
+        self._rej_fh.close()
+
+    # -- messages ------------------------------------------------------------
+    def on_hits(self, topic_site: str, payload: bytes) -> bool:
+        """Handle one hits message. Returns True if it was journaled (ack after sync)."""
+        wall = self.clock()
+        self._last_msg_wall = wall
+        if len(payload) > self.broker.max_message_bytes:
+            self._reject(
+                topic_site,
+                "too_large",
+                "<payload>",
+                f"{len(payload)} bytes exceed {self.broker.max_message_bytes}",
+                wall,
+            )
+            return False
+        try:
+            obj = orjson.loads(payload)
+        except orjson.JSONDecodeError as exc:
+            self._reject(topic_site, "bad_json", "<payload>", f"not JSON: {exc}", wall)
+            return False
+        try:
+            batch = parse_batch(obj, self.registry, topic_site=topic_site)
+        except BatchRejected as exc:
+            self._reject(topic_site, exc.reason, exc.field, exc.detail, wall)
+            return False
+        recv = max(self._last_recv, self._last_tick, min(wall, batch.live_end))
+        self._last_recv = recv
+        self._max_live_end = max(self._max_live_end, batch.live_end)
+        batch = dataclasses.replace(batch, recv_ns=recv)
+        self.journal.append(orjson.dumps(batch.to_json_obj()), recv)
+        self.metrics.journal_lines.inc()
+        cands = self.pipeline.offer(batch)
+        status = self.pipeline.last_status
+        site = batch.site
+        m = self.metrics
+        if status == "accepted":
+            m.batches.labels(site).inc()
+            m.hits.labels(site).inc(batch.n_hits)
+        elif status == "duplicate":
+            m.duplicates.labels(site).inc()
+        elif status == "late":
+            m.late.labels(site).inc()
+        if self.pipeline.last_new_gaps:
+            m.gaps.labels(site).inc(self.pipeline.last_new_gaps)
+        m.live.labels(site).set(1)
+        self._write(cands, live=True)
+        return True
+
+    def on_status(self, topic_site: str, payload: bytes) -> None:
+        """A site's agent status (retained; the last will says offline)."""
+        if topic_site not in self.registry:
+            return
+        try:
+            obj = orjson.loads(payload)
+        except orjson.JSONDecodeError:
+            return
+        state = obj.get("state") if isinstance(obj, dict) else None
+        if state in ("online", "offline", "spooling"):
+            self.metrics.live.labels(topic_site).set(0 if state == "offline" else 1)
+            event(log, "site_status", site=topic_site, state=state)
+
+    def tick(self) -> None:
+        """Advance the watermark by the wall clock when caught up (or long idle)."""
+        wall = self.clock()
+        behind = wall - self._max_live_end > self.lateness_ns + NS_PER_S
+        idle = wall - self._last_msg_wall > IDLE_TICK_AFTER_S * NS_PER_S
+        if behind and not idle:
+            return
+        self._last_tick = max(self._last_tick, wall)
+        self._write(self.pipeline.tick(wall), live=True)
+        wm = self.pipeline.orderer.watermark
+        if wm is not None:
+            self.metrics.lag.set((wall - wm) / NS_PER_S)
+        est = self.pipeline.engine.last_rates_hz
+        if est is not None:
+            for sid, r in zip(self.registry.ids, est, strict=True):
+                self.metrics.rate.labels(sid).set(float(r))
+
+    def _reject(self, site: str, reason: str, field: str, detail: str, wall: int) -> None:
+        self.metrics.rejected.labels(reason).inc()
+        rec = {
+            "recv_ns": wall,
+            "topic_site": site,
+            "reason": reason,
+            "field": field,
+            "detail": detail[:500],
+        }
+        self._rej_fh.write(orjson.dumps(rec) + b"\n")
+
+    def _write(self, cands: list[Candidate], *, live: bool) -> None:
+        if not cands:
+            return
+        wall = self.clock()
+        for c in cands:
+            k = (c.id, c.revision)
+            if k in self._written:
+                continue
+            self._written.add(k)
+            self._cand_fh.write(c.to_json_line())
+            self.metrics.candidates.labels(c.trigger, c.statistic).inc()
+            ready = c.details.get("ready_gps_ns")
+            if live and isinstance(ready, int):
+                self.metrics.latency.observe(max(wall - ready, 0) / NS_PER_S)
+            event(
+                log,
+                "candidate",
+                id=c.id,
+                revision=c.revision,
+                trigger=c.trigger,
+                statistic=c.statistic,
+                far_per_year=c.far_per_year,
+                sites=len(c.sites),
+            )
+        self._cand_fh.flush()
+
+    # -- the MQTT loop -------------------------------------------------------
+    async def run(self, stop: asyncio.Event) -> None:
+        """Connect, consume and reconnect until ``stop`` is set; then checkpoint."""
+        backoff = 0.5
+        try:
+            while not stop.is_set():
+                client = self._client()
+                # acknowledge only after the journal is synced (see module doc)
+                client._client.manual_ack_set(True)
+                try:
+                    async with client:
+                        self.metrics.connected.set(1)
+                        event(log, "connected", broker=self.broker.url)
+                        backoff = 0.5
+                        await client.subscribe(topics.all_hits_filter(self.root), qos=1)
+                        await client.subscribe(topics.all_status_filter(self.root), qos=1)
+                        await self._consume(client, stop)
+                except aiomqtt.MqttError as exc:
+                    self.metrics.connected.set(0)
+                    event(
+                        log,
+                        "broker_unreachable",
+                        logging.WARNING,
+                        error=str(exc),
+                        retry_in_s=round(backoff, 2),
+                    )
+                    with contextlib.suppress(TimeoutError):
+                        await asyncio.wait_for(stop.wait(), backoff)
+                    backoff = min(backoff * 2, 30.0) * random.uniform(0.8, 1.2)
+        finally:
+            self.metrics.connected.set(0)
+            self.save_checkpoint()
+            event(log, "stopped", checkpoint=str(self.ckpt_path))
+
+    def _client(self) -> aiomqtt.Client:
+        b = self.broker
+        tls: ssl.SSLContext | None = None
+        if b.tls:
+            tls = ssl.create_default_context(cafile=str(b.ca_file) if b.ca_file else None)
+            if b.cert_file is not None:
+                tls.load_cert_chain(str(b.cert_file), str(b.key_file) if b.key_file else None)
+        return aiomqtt.Client(
+            b.host,
+            b.port,
+            identifier=b.client_id,
+            username=b.username,
+            password=b.password,
+            keepalive=b.keepalive_s,
+            clean_session=False,
+            tls_context=tls,
+            max_queued_incoming_messages=QUEUE_MAX,
+        )
+
+    async def _consume(self, client: aiomqtt.Client, stop: asyncio.Event) -> None:
+        queue: asyncio.Queue[aiomqtt.Message] = asyncio.Queue(maxsize=QUEUE_MAX)
+
+        async def reader() -> None:
+            async for msg in client.messages:
+                await queue.put(msg)
+
+        pending: list[tuple[int, int]] = []
+        last_sync = last_tick = time.monotonic()
+        task = asyncio.create_task(reader(), name="mqtt-reader")
+        try:
+            while True:
+                if stop.is_set():
+                    while not queue.empty():
+                        self._dispatch(client, queue.get_nowait(), pending)
+                    break
+                try:
+                    msg = await asyncio.wait_for(queue.get(), TICK_EVERY_S)
+                    self._dispatch(client, msg, pending)
+                except TimeoutError:
+                    pass
+                if task.done():  # connection lost: re-raise its MqttError
+                    task.result()
+                now = time.monotonic()
+                if pending and (now - last_sync >= SYNC_EVERY_S or len(pending) >= 1000):
+                    self._sync_and_ack(client, pending)
+                    last_sync = now
+                if queue.empty() and now - last_tick >= TICK_EVERY_S:
+                    self.tick()
+                    last_tick = now
+                if now - self._last_ckpt >= CHECKPOINT_EVERY_S:
+                    self._sync_and_ack(client, pending)
+                    self.save_checkpoint()
+        finally:
+            self._sync_and_ack(client, pending)
+            task.cancel()
+            with contextlib.suppress(asyncio.CancelledError, aiomqtt.MqttError):
+                await task
+
+    def _dispatch(
+        self, client: aiomqtt.Client, msg: aiomqtt.Message, pending: list[tuple[int, int]]
+    ) -> None:
+        parsed = topics.site_of(self.root, msg.topic.value)
+        payload = msg.payload if isinstance(msg.payload, bytes) else str(msg.payload).encode()
+        journaled = False
+        if parsed is None:
+            self._reject(
+                "?", "bad_topic", "<topic>", f"unexpected topic {msg.topic.value!r}", self.clock()
+            )
+        elif parsed[1] == "hits":
+            journaled = self.on_hits(parsed[0], payload)
+        else:
+            self.on_status(parsed[0], payload)
+        if msg.qos > 0:
+            if journaled:
+                pending.append((msg.mid, msg.qos))
+            else:
+                _ack(client, msg.mid, msg.qos)
+
+    def _sync_and_ack(self, client: aiomqtt.Client, pending: list[tuple[int, int]]) -> None:
+        if not pending:
+            return
+        self.journal.sync()
+        for mid, qos in pending:
+            _ack(client, mid, qos)
+        pending.clear()
+
+
+def _ack(client: aiomqtt.Client, mid: int, qos: int) -> None:
+    with contextlib.suppress(Exception):  # the connection may be gone: the broker resends
+        client._client.ack(mid, qos)
+
+
+def _written_keys(path: Path) -> set[tuple[str, int]]:
+    """(id, revision) of every candidate already in ``candidates.jsonl``."""
+    out: set[tuple[str, int]] = set()
+    if not path.is_file():
+        return out
+    with open(path, "rb") as fh:
+        for line in fh:
+            try:
+                obj: Any = orjson.loads(line)
+                out.add((str(obj["id"]), int(obj.get("revision", 1))))
+            except (orjson.JSONDecodeError, KeyError, TypeError, ValueError):
+                continue
+    return out

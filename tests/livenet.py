@@ -1,0 +1,127 @@
+"""Helpers for tests of the live service: run `tocsin serve` as a process, publish batches."""
+
+from __future__ import annotations
+
+import asyncio
+import gzip
+import os
+import signal
+import subprocess
+import sys
+import time
+import urllib.request
+from collections.abc import Iterable
+from pathlib import Path
+
+import aiomqtt
+import orjson
+
+from tests.mosquitto import Mosquitto, free_port
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "replay_data" / "demo.jsonl.gz"
+SITES = ROOT / "replay_data" / "network.toml"
+
+
+def demo_lines() -> list[bytes]:
+    """The shipped demo recording's lines without ``recv_ns`` (what agents send)."""
+    out = []
+    with gzip.open(DEMO, "rb") as fh:
+        for line in fh:
+            obj = orjson.loads(line)
+            obj.pop("recv_ns", None)
+            out.append(orjson.dumps(obj))
+    return out
+
+
+def write_config(tmp: Path, broker: Mosquitto, *, metrics_port: int = 0) -> Path:
+    cfg = tmp / "tocsin.toml"
+    cfg.write_text(
+        f'registry = "{SITES}"\n'
+        f'data_dir = "{tmp / "data"}"\n'
+        "[broker]\n"
+        f'url = "{broker.url}"\n'
+        'client_id = "tocsin-test-service"\n'
+        "[metrics]\n"
+        f"port = {metrics_port}\n"
+    )
+    return cfg
+
+
+class ServiceProcess:
+    """`tocsin serve` in a subprocess (so tests can SIGKILL it)."""
+
+    def __init__(self, config: Path) -> None:
+        self.config = config
+        self.proc: subprocess.Popen[bytes] | None = None
+        self.log = config.parent / "serve.log"
+
+    def start(self) -> None:
+        env = dict(os.environ)
+        with open(self.log, "ab") as fh:
+            self.proc = subprocess.Popen(
+                [sys.executable, "-m", "tocsin.cli.main", "serve", "--config", str(self.config)],
+                stdout=fh,
+                stderr=fh,
+                env=env,
+            )
+
+    def wait_connected(self, timeout_s: float = 30.0) -> None:
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            if self.log.exists() and b'"connected"' in self.log.read_bytes():
+                return
+            assert self.proc is not None and self.proc.poll() is None, self.log.read_text()
+            time.sleep(0.05)
+        raise TimeoutError(f"service did not connect: {self.log.read_text()[-2000:]}")
+
+    def stop(self, sig: int = signal.SIGTERM, timeout_s: float = 60.0) -> int:
+        assert self.proc is not None
+        self.proc.send_signal(sig)
+        code = self.proc.wait(timeout=timeout_s)
+        self.proc = None
+        return code
+
+
+def journal_lines(data: Path) -> list[dict[str, object]]:
+    out = []
+    for seg in sorted((data / "journal").glob("journal-*.jsonl")):
+        for line in seg.read_bytes().splitlines():
+            if line.strip():
+                out.append(orjson.loads(line))
+    return out
+
+
+def wait_journal(data: Path, n: int, timeout_s: float = 120.0) -> None:
+    """Wait until the journal holds at least ``n`` distinct (site, seq)."""
+    deadline = time.monotonic() + timeout_s
+    seen = 0
+    while time.monotonic() < deadline:
+        seen = len({(j["site"], j["seq"]) for j in journal_lines(data)})
+        if seen >= n:
+            return
+        time.sleep(0.2)
+    raise TimeoutError(f"journal holds {seen} of {n} batches")
+
+
+async def publish(port: int, lines: Iterable[bytes], *, client_id: str = "test-pub") -> int:
+    """Publish batch lines to their site's hits topic at QoS 1; returns the count."""
+    n = 0
+    async with aiomqtt.Client("127.0.0.1", port, identifier=client_id) as c:
+        for line in lines:
+            site = orjson.loads(line).get("site", "x") if line.startswith(b"{") else "x"
+            await c.publish(f"tocsin/site/{site}/hits", line, qos=1)
+            n += 1
+    return n
+
+
+def publish_sync(port: int, lines: Iterable[bytes], **kw: str) -> int:
+    return asyncio.run(publish(port, lines, **kw))
+
+
+def scrape(port: int) -> str:
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as r:
+        return str(r.read().decode())
+
+
+__all__ = ["free_port"]
