@@ -34,7 +34,9 @@ def demo_lines() -> list[bytes]:
     return out
 
 
-def write_config(tmp: Path, broker: Mosquitto, *, metrics_port: int = 0) -> Path:
+def write_config(
+    tmp: Path, broker: Mosquitto, *, metrics_port: int = 0, max_message_bytes: int = 4_000_000
+) -> Path:
     cfg = tmp / "tocsin.toml"
     cfg.write_text(
         f'registry = "{SITES}"\n'
@@ -42,6 +44,7 @@ def write_config(tmp: Path, broker: Mosquitto, *, metrics_port: int = 0) -> Path
         "[broker]\n"
         f'url = "{broker.url}"\n'
         'client_id = "tocsin-test-service"\n'
+        f"max_message_bytes = {max_message_bytes}\n"
         "[metrics]\n"
         f"port = {metrics_port}\n"
     )
@@ -104,18 +107,25 @@ def wait_journal(data: Path, n: int, timeout_s: float = 120.0) -> None:
     raise TimeoutError(f"journal holds {seen} of {n} batches")
 
 
-async def publish(port: int, lines: Iterable[bytes], *, client_id: str = "test-pub") -> int:
-    """Publish batch lines to their site's hits topic at QoS 1; returns the count."""
+async def publish(
+    port: int, lines: Iterable[bytes | tuple[str, bytes]], *, client_id: str = "test-pub"
+) -> int:
+    """Publish at QoS 1: a batch line goes to its own site's hits topic, a
+    ``(topic, payload)`` pair to that topic. Returns the count."""
     n = 0
     async with aiomqtt.Client("127.0.0.1", port, identifier=client_id) as c:
-        for line in lines:
-            site = orjson.loads(line).get("site", "x") if line.startswith(b"{") else "x"
-            await c.publish(f"tocsin/site/{site}/hits", line, qos=1)
+        for item in lines:
+            if isinstance(item, tuple):
+                topic, payload = item
+            else:
+                payload = item
+                topic = f"tocsin/site/{orjson.loads(item)['site']}/hits"
+            await c.publish(topic, payload, qos=1)
             n += 1
     return n
 
 
-def publish_sync(port: int, lines: Iterable[bytes], **kw: str) -> int:
+def publish_sync(port: int, lines: Iterable[bytes | tuple[str, bytes]], **kw: str) -> int:
     return asyncio.run(publish(port, lines, **kw))
 
 

@@ -1,0 +1,96 @@
+"""Bad input over the wire: every kind of malformed message is refused with a reason,
+counted by reason in the metrics, and nothing valid is lost; the service keeps running."""
+
+from __future__ import annotations
+
+import json
+import random
+import re
+import signal
+from collections import Counter
+from pathlib import Path
+
+import orjson
+import pytest
+
+from tests.livenet import (
+    ServiceProcess,
+    demo_lines,
+    journal_lines,
+    publish_sync,
+    scrape,
+    wait_journal,
+    write_config,
+)
+from tests.mosquitto import Mosquitto, free_port
+
+pytestmark = [pytest.mark.broker, pytest.mark.slow]
+
+MAX_BYTES = 65_536
+
+
+def _malformed(rng: random.Random, good: list[dict[str, object]]) -> tuple[str, str, bytes]:
+    """(expected reason, topic, payload) of one random malformed message."""
+    b = dict(rng.choice(good))
+    site = str(b["site"])
+    topic = f"tocsin/site/{site}/hits"
+    kind = rng.randrange(9)
+    if kind == 0:
+        raw = orjson.dumps(b)
+        return "bad_json", topic, raw[: rng.randrange(1, len(raw) - 1)]
+    if kind == 1:
+        b["site"] = f"ghost-{rng.randrange(10**6)}"
+        return "unknown_site", f"tocsin/site/{b['site']}/hits", orjson.dumps(b)
+    if kind == 2:
+        other = "kestrel-ridge" if site != "kestrel-ridge" else "hollow-creek-2"
+        return "site_topic_mismatch", f"tocsin/site/{other}/hits", orjson.dumps(b)
+    if kind == 3:
+        return "too_large", topic, b"[" + b"1," * (MAX_BYTES // 2) + b"1]"
+    if kind == 4:
+        b[rng.choice(["seq", "v", "live", "t"])] = rng.choice(["x", 1.5, None, {"a": 1}, [[]]])
+        reason = "bad_version" if "v" in b and b["v"] != 1 else "bad_schema"
+        return reason, topic, orjson.dumps(b)
+    if kind == 5:
+        start = int(b["live"][0])  # type: ignore[index]
+        b["t"] = [start + 9, start + 3]
+        return "unsorted_hits", topic, orjson.dumps(b)
+    if kind == 6:
+        b["t"] = [int(b["live"][1]) + 7]  # type: ignore[index]
+        return "hit_outside_live", topic, orjson.dumps(b)
+    if kind == 7:
+        b["t"] = [-rng.randrange(1, 10**9)]
+        return "bad_schema", topic, orjson.dumps(b)
+    nested = b"[" * 5000 + b"]" * 5000  # deeply nested: refused by the JSON parser
+    return "bad_json", topic, nested
+
+
+def test_a_thousand_bad_messages_mixed_with_good_ones(mosquitto: Mosquitto, tmp_path: Path) -> None:
+    rng = random.Random(20261202)
+    good_lines = demo_lines()[:3000]
+    good = [orjson.loads(x) for x in good_lines]
+    bad = [_malformed(rng, good) for _ in range(1200)]
+    # shuffle bad ones in between the good ones, keeping the good ones in order
+    stream: list[bytes | tuple[str, bytes]] = list(good_lines)
+    for reason, topic, payload in bad:
+        stream.insert(rng.randrange(len(stream) + 1), (topic, payload))
+    port = free_port()
+    cfg = write_config(tmp_path, mosquitto, metrics_port=port, max_message_bytes=MAX_BYTES)
+    svc = ServiceProcess(cfg)
+    svc.start()
+    svc.wait_connected()
+    publish_sync(mosquitto.port, stream)
+    wait_journal(tmp_path / "data", len(good))
+    metrics = scrape(port)  # the service is still up and answering
+    assert svc.proc is not None and svc.proc.poll() is None
+    counted = {
+        m.group(1): float(m.group(2))
+        for m in re.finditer(r'tocsin_batches_rejected_total\{reason="(\w+)"\} ([0-9.e+]+)', metrics)
+    }
+    expected = Counter(r for r, _, _ in bad)
+    assert counted == {k: float(v) for k, v in expected.items()}, (counted, expected)
+    assert svc.stop(signal.SIGTERM) == 0
+    journal = journal_lines(tmp_path / "data")
+    assert {(j["site"], j["seq"]) for j in journal} == {(g["site"], g["seq"]) for g in good}
+    rejected = [json.loads(x) for x in (tmp_path / "data" / "rejected.jsonl").read_text().splitlines()]
+    assert len(rejected) == len(bad)
+    assert all(r["reason"] and r["detail"] for r in rejected)
