@@ -4,11 +4,14 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import logging
 import signal
 from pathlib import Path
 from typing import Any
 
 from tocsin.live import logs
+from tocsin.live.embedded_broker import embedded_broker
+from tocsin.live.logs import event
 from tocsin.live.service import Service
 from tocsin.model.service_config import load_service_config
 
@@ -21,7 +24,9 @@ def add_parser(sub: Any) -> None:
             "Subscribe to every site's hit batches over MQTT, validate them, journal them, "
             "run the trigger engine (the same as `tocsin replay`) and write candidates to "
             "DATA_DIR/candidates.jsonl. Prometheus metrics on the configured port. SIGTERM "
-            "drains, checkpoints and exits 0; a restart resumes from the checkpoint and journal."
+            "drains, checkpoints and exits 0; a restart resumes from the checkpoint and journal. "
+            "With no [broker] table in the config, an embedded broker is started on "
+            "127.0.0.1:1883 (for trials; use Mosquitto in production, see deploy/)."
         ),
     )
     p.add_argument("--config", type=Path, required=True, help="service config (TOML)")
@@ -43,7 +48,13 @@ async def _main(service: Service) -> int:
     if m.port:
         service.metrics.serve(m.host, m.port)
     try:
-        await service.run(stop)
+        if service.cfg.broker is None:
+            b = service.broker
+            async with embedded_broker(b.host, b.port) as url:
+                event(logging.getLogger("tocsin.serve"), "embedded_broker", url=url)
+                await service.run(stop)
+        else:
+            await service.run(stop)
     finally:
         service.close()
     return 0
