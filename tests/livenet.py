@@ -15,7 +15,6 @@ from pathlib import Path
 
 import aiomqtt
 import orjson
-
 from tests.mosquitto import Mosquitto, free_port
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -58,8 +57,10 @@ class ServiceProcess:
         self.config = config
         self.proc: subprocess.Popen[bytes] | None = None
         self.log = config.parent / "serve.log"
+        self._log_from = 0
 
     def start(self) -> None:
+        self._log_from = self.log.stat().st_size if self.log.exists() else 0
         env = dict(os.environ)
         with open(self.log, "ab") as fh:
             self.proc = subprocess.Popen(
@@ -72,7 +73,7 @@ class ServiceProcess:
     def wait_connected(self, timeout_s: float = 30.0) -> None:
         deadline = time.monotonic() + timeout_s
         while time.monotonic() < deadline:
-            if self.log.exists() and b'"connected"' in self.log.read_bytes():
+            if self.log.exists() and b'"connected"' in self.log.read_bytes()[self._log_from :]:
                 return
             assert self.proc is not None and self.proc.poll() is None, self.log.read_text()
             time.sleep(0.05)

@@ -56,6 +56,7 @@ def test_heartbeat_is_valid(small_registry: SiteRegistry) -> None:
         ({"t": [-5], "amp": None}, "bad_schema", "t.0"),
         ({"t": [1.5e18], "amp": None}, "bad_schema", "t.0"),
         ({"live": [T0 + 10, T0]}, "bad_live", "live"),
+        ({"live": [T0, T0 + 3601 * 10**9]}, "bad_live", "live"),
         ({"live": [T0]}, "bad_schema", "live"),
         ({"amp": [1.0]}, "amp_length", "amp"),
         ({"extra": 1}, "bad_schema", "extra"),

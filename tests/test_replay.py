@@ -118,3 +118,19 @@ def test_bad_usage_exits_2_with_a_reason(
     assert main(argv) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and needle in err[0]
+
+
+def test_a_long_empty_stretch_is_skipped_not_misbinned(registry: SiteRegistry) -> None:
+    """A block spanning months after the data (a restart long after, or a recording
+    with a gap) leaves the engine consistent: old hits are not wrapped into new bins,
+    and seeds whose background is gone are counted as skipped, not judged."""
+    from tocsin.engine.block import Block
+
+    pipe, _, _ = run_pipeline(registry, list(read_recording(REC, registry)), candidate_far=1e6)
+    eng = pipe.engine
+    assert eng.t_end is not None
+    far = eng.t_end + 200 * 86400 * 10**9
+    assert eng.process(Block.empty(eng.t_end, far)) == []
+    assert eng.store.end_bin == far // eng.bin_ns
+    assert eng.store.counts(eng.store.first_bin, eng.store.end_bin).sum() == 0
+    assert eng.store.live_ns(eng.store.first_bin, eng.store.end_bin).sum() == 0

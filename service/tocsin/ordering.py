@@ -72,6 +72,11 @@ class Orderer:
         self.n_late = 0
         self.n_accepted = 0
 
+    @property
+    def now(self) -> GpsNs | None:
+        """The latest arrival (or tick) time seen, GPS ns."""
+        return self._now
+
     # -- intake ------------------------------------------------------------
     def offer(self, batch: HitBatch, recv_ns: GpsNs | None = None) -> Verdict:
         """Take one validated batch. ``recv_ns`` defaults to the batch's ``recv_ns``,

@@ -44,6 +44,8 @@ class EngineCounters:
     live_site_ns: int = 0
     decisions: dict[str, int] = field(default_factory=dict)
     seeds_evaluated: int = 0
+    seeds_skipped: int = 0
+    """Hits that could not be judged as seeds (their background was no longer held)."""
 
 
 class Engine:
@@ -151,11 +153,19 @@ class Engine:
         # The first rate epoch needs some history; sites without enough live time
         # in their background stretch are left out by background_rates (``ok``).
         first_ok_bin = -(-((self._first_bin or 0) + 1) // self.update_bins) * self.update_bins
+        # Bins whose background the ring no longer holds (after a long empty
+        # stretch) cannot be judged; nothing was there to judge.
+        held_ns = (self.store.first_bin + self.bg_bins + self.update_bins) * self.bin_ns
         for e, (stat, k, w_s, ahead) in enumerate(self._evals):
             limit = min(done_ns, t_end - ahead)
             start = self._prog[e]
             if start is None:
                 start = first_ok_bin * self.bin_ns
+            if start < held_ns:
+                self.counters.seeds_skipped += int(
+                    np.searchsorted(self._t, held_ns) - np.searchsorted(self._t, start)
+                )
+                start = held_ns
             if limit <= start:
                 self._prog[e] = start
                 continue

@@ -56,11 +56,16 @@ class BinStore:
             self._counts[:, b % self.capacity] = 0
             self._live[:, b % self.capacity] = 0
         self.end_bin = max(self.end_bin, b1)
+        # After a long empty stretch only the last ``capacity`` bins are held:
+        # anything older is dropped, never wrapped into a wrong bin.
+        oldest_ns = self.first_bin * self.bin_ns
         if block.t.size:
-            col = (block.t // self.bin_ns) % self.capacity
-            np.add.at(self._counts, (block.site.astype(np.intp), col.astype(np.intp)), 1)
+            keep = block.t >= oldest_ns
+            col = (block.t[keep] // self.bin_ns) % self.capacity
+            np.add.at(self._counts, (block.site[keep].astype(np.intp), col.astype(np.intp)), 1)
         if block.live_site.size:
-            self._add_live(block.live_site, block.live_start, block.live_end)
+            start = np.maximum(block.live_start, oldest_ns)
+            self._add_live(block.live_site, start, block.live_end)
 
     def _add_live(self, site: I64Array | np.ndarray, start: I64Array, end: I64Array) -> None:
         bn = self.bin_ns

@@ -38,6 +38,7 @@ from pathlib import Path
 from typing import Any
 
 import aiomqtt
+import numpy as np
 import orjson
 
 from tocsin.errors import BatchRejected
@@ -64,6 +65,8 @@ TICK_EVERY_S = 0.25
 IDLE_TICK_AFTER_S = 10.0
 """With no message for this long (s), ticks advance the watermark even when behind."""
 CHECKPOINT_EVERY_S = 300.0
+MAX_FUTURE_S = 60.0
+"""A batch starting this far (s) after the service's clock is refused: a site clock is wrong."""
 QUEUE_MAX = 20_000
 """Messages waiting for the pipeline; beyond this the reader waits (the broker holds the rest)."""
 
@@ -107,12 +110,17 @@ class Service:
                 self._max_live_end = max(self._max_live_end, item.live_end)
             self._write(pipe.offer(item), live=False)
             n += 1
+        now = pipe.orderer.now or 0
+        self._last_recv = max(self._last_recv, now)
+        self._max_live_end = max(self._max_live_end, now)
+        rates = pipe.engine.last_rates_hz
         event(
             log,
             "restored",
             checkpoint=ck is not None,
             journal_lines_replayed=n,
             watermark=pipe.orderer.watermark,
+            sites_with_rates=0 if rates is None else int(np.count_nonzero(rates)),
         )
         return pipe
 
@@ -153,6 +161,16 @@ class Service:
             batch = parse_batch(obj, self.registry, topic_site=topic_site)
         except BatchRejected as exc:
             self._reject(topic_site, exc.reason, exc.field, exc.detail, wall)
+            return False
+        if batch.live_start > wall + MAX_FUTURE_S * NS_PER_S:
+            ahead_s = (batch.live_start - wall) / NS_PER_S
+            self._reject(
+                topic_site,
+                "future",
+                "live",
+                f"live interval starts {ahead_s:.1f} s after the service's clock",
+                wall,
+            )
             return False
         recv = max(self._last_recv, self._last_tick, min(wall, batch.live_end))
         self._last_recv = recv
@@ -199,9 +217,12 @@ class Service:
             return
         self._last_tick = max(self._last_tick, wall)
         self._write(self.pipeline.tick(wall), live=True)
+
+    def refresh_gauges(self) -> None:
+        """Processing lag and per-site rate estimates (called about once a second)."""
         wm = self.pipeline.orderer.watermark
         if wm is not None:
-            self.metrics.lag.set((wall - wm) / NS_PER_S)
+            self.metrics.lag.set((self.clock() - wm) / NS_PER_S)
         est = self.pipeline.engine.last_rates_hz
         if est is not None:
             for sid, r in zip(self.registry.ids, est, strict=True):
@@ -305,7 +326,7 @@ class Service:
                 await queue.put(msg)
 
         pending: list[tuple[int, int]] = []
-        last_sync = last_tick = time.monotonic()
+        last_sync = last_tick = last_gauges = time.monotonic()
         task = asyncio.create_task(reader(), name="mqtt-reader")
         try:
             while True:
@@ -327,6 +348,9 @@ class Service:
                 if queue.empty() and now - last_tick >= TICK_EVERY_S:
                     self.tick()
                     last_tick = now
+                if now - last_gauges >= 1.0:
+                    self.refresh_gauges()
+                    last_gauges = now
                 if now - self._last_ckpt >= CHECKPOINT_EVERY_S:
                     self._sync_and_ack(client, pending)
                     self.save_checkpoint()

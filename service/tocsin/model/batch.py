@@ -19,6 +19,8 @@ from tocsin.errors import BatchRejected
 from tocsin.model.registry import SiteRegistry
 from tocsin.types import F64Array, GpsNs, I64Array
 
+MAX_LIVE_NS = 3600 * 10**9
+"""Longest live interval of one batch (1 h); agents send about 1 s."""
 MAX_HITS_PER_BATCH = 1_000_000
 """Largest batch accepted (hits). A 1 s batch of a 1 m^2 scintillator holds ~200."""
 I64_MAX = 2**63 - 1
@@ -36,6 +38,8 @@ REJECT_REASONS = (
     "too_large",
     "duplicate_seq",
     "late",
+    "future",
+    "bad_topic",
 )
 """Every reason a batch can be refused for, as used in metrics and summaries."""
 
@@ -133,6 +137,10 @@ def parse_batch(
     if end < start:
         raise BatchRejected(
             "bad_live", "live", f"live interval [{start}, {end}) ends before it starts"
+        )
+    if end - start > MAX_LIVE_NS:
+        raise BatchRejected(
+            "bad_live", "live", f"live interval of {(end - start) / 1e9:.0f} s exceeds 3600 s"
         )
     t = np.asarray(m.t, dtype=np.int64)
     if t.size:
