@@ -34,15 +34,17 @@ changed by less than ``redundancy_ratio``) is not evaluated and not counted.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
+from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_rows
 from tocsin.model.config import CoincidenceConfig
 from tocsin.model.registry import SiteRegistry
-from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I32Array, I64Array
+from tocsin.types import BoolArray, F64Array, I32Array, I64Array
 
 
 @dataclass(frozen=True, slots=True)
@@ -71,7 +73,7 @@ class Tables:
 
 @dataclass(frozen=True, slots=True)
 class SeedResult:
-    """Decisions of one scale: seeds that passed, with their neighbour hits."""
+    """Decisions of one scale and statistic: seeds that passed, with their other hits."""
 
     scale_index: int
     seed_idx: I64Array
@@ -81,21 +83,23 @@ class SeedResult:
     nb_seed: I64Array
     """Group number (0 .. len(seed_idx)-1) of each neighbour hit below."""
     nb_idx: I64Array
-    """Stream index of the earliest in-slot hit of each counted neighbour site."""
+    """Stream index of each other hit of the decision (``sites``: the earliest in-slot
+    hit of each counted site; ``front``: the partners and consistent hits)."""
 
 
 class SlotGeometry:
-    """Forward slot bounds (ns, relative to the seed) per scale and site pair."""
+    """Forward slot bounds (ns, relative to the seed) per scale and site pair:
+    ``lo`` (N, N) = -k sigma_sj and ``hi`` (S, N, N) = light time + k sigma_sj + W."""
 
-    def __init__(self, registry: SiteRegistry, cfg: CoincidenceConfig) -> None:
-        r = registry.ecef_m
-        light = np.linalg.norm(r[:, None, :] - r[None, :, :], axis=-1) / C_M_PER_NS
-        sig = registry.clock_sigma_ns
-        comb = np.sqrt(sig[:, None] ** 2 + sig[None, :] ** 2)
+    def __init__(
+        self, registry: SiteRegistry, *, clock_sigmas: float, scales_s: Sequence[float]
+    ) -> None:
+        light = pair_light_time_ns(registry.ecef_m)
+        comb = combined_sigma_ns(registry.clock_sigma_ns)
         self.n_sites = len(registry)
-        self.scales_ns = np.array([round(w * 1e9) for w in cfg.scales_s], dtype=np.int64)
-        self.lo = -np.ceil(cfg.clock_sigmas * comb)  # (N, N), <= 0
-        base_hi = np.ceil(light + cfg.clock_sigmas * comb)
+        self.scales_ns = np.array([round(w * 1e9) for w in scales_s], dtype=np.int64)
+        self.lo = -np.ceil(clock_sigmas * comb)  # (N, N), <= 0
+        base_hi = np.ceil(light + clock_sigmas * comb)
         self.hi = base_hi[None, :, :] + self.scales_ns[:, None, None]  # (S, N, N)
         self.width = self.hi - self.lo[None, :, :]
         self.back_ns = int(-self.lo.min())
@@ -108,7 +112,7 @@ class CoincidenceTrigger:
 
     def __init__(self, registry: SiteRegistry, cfg: CoincidenceConfig) -> None:
         self.cfg = cfg
-        self.geom = SlotGeometry(registry, cfg)
+        self.geom = SlotGeometry(registry, clock_sigmas=cfg.clock_sigmas, scales_s=cfg.scales_s)
         self.n_sites = len(registry)
 
     @property

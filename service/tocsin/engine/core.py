@@ -18,7 +18,7 @@ from tocsin.engine.coincidence import CoincidenceTrigger, SeedResult, Tables
 from tocsin.engine.direction import fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
 from tocsin.engine.exposure import BinStore
-from tocsin.engine.front import FrontResult, FrontSearch
+from tocsin.engine.front import FrontSearch
 from tocsin.engine.merge import Decision, Merger
 from tocsin.engine.rates import background_rates
 from tocsin.model.candidate import Candidate
@@ -197,7 +197,7 @@ class Engine:
         return out
 
     def _coinc_decisions(
-        self, stat: str, res: SeedResult | FrontResult, tab: Tables, w_s: float, ahead: int
+        self, stat: str, res: SeedResult, tab: Tables, w_s: float, ahead: int
     ) -> list[Decision]:
         out: list[Decision] = []
         ids = self.registry.ids

@@ -36,6 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from tocsin.engine.coincidence import SeedResult, SlotGeometry
 from tocsin.engine.direction import seed_baselines, solve_triples
 from tocsin.engine.geometry import ellipsoid_up
 from tocsin.engine.pairs import window_pairs
@@ -58,20 +59,6 @@ def _dot3(x: F64Array, y: F64Array) -> F64Array:
     return out
 
 
-@dataclass(frozen=True, slots=True)
-class FrontResult:
-    """Seeds whose best front passed ``p_max``, with the hits on the front."""
-
-    scale_index: int
-    seed_idx: I64Array
-    p: F64Array
-    multiplicity: I64Array
-    nb_seed: I64Array
-    """Group number of each hit in ``nb_idx``."""
-    nb_idx: I64Array
-    """Stream index of each partner and consistent hit (seed excluded)."""
-
-
 class FrontSearch:
     """The ``front`` statistic at ``cfg.front_scales_s``."""
 
@@ -82,13 +69,8 @@ class FrontSearch:
         self.sigma = registry.clock_sigma_ns
         self.n_sites = len(registry)
         self.eligible: BoolArray = registry.clock_sigma_ns <= cfg.front_max_clock_ns
-        r = registry.ecef_m
-        light = np.linalg.norm(r[:, None, :] - r[None, :, :], axis=-1) / C_M_PER_NS
-        comb_sig = np.sqrt(self.sigma[:, None] ** 2 + self.sigma[None, :] ** 2)
-        self.scales_ns = np.array([round(w * 1e9) for w in cfg.front_scales_s], dtype=np.int64)
-        self.lo = -np.ceil(cfg.clock_sigmas * comb_sig)
-        base = np.ceil(light + cfg.clock_sigmas * comb_sig)
-        self.hi = base[None] + self.scales_ns[:, None, None]
+        geom = SlotGeometry(registry, clock_sigmas=cfg.clock_sigmas, scales_s=cfg.front_scales_s)
+        self.scales_ns, self.lo, self.hi = geom.scales_ns, geom.lo, geom.hi
         el = self.eligible
         pair_el = el[:, None] & el[None, :]
         self.back_ns = int(-self.lo[pair_el].min()) if pair_el.any() else 0
@@ -129,7 +111,7 @@ class FrontSearch:
         rates_per_ns: F64Array,
         *,
         p_max: float,
-    ) -> list[FrontResult]:
+    ) -> list[SeedResult]:
         """Evaluate seeds ``t[seed_lo:seed_hi]`` at every front scale (one result per
         scale); keep seeds with p <= p_max and m >= 4. Triples are solved once, at
         the widest scale's slots, and re-used for the narrower ones."""
@@ -137,7 +119,7 @@ class FrontSearch:
         k_sig = self.cfg.clock_sigmas
         use = self.eligible & (rates_per_ns > 0)
         empty = np.zeros(0, dtype=np.int64)
-        none = [FrontResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
+        none = [SeedResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
         seed_pos = np.arange(seed_lo, seed_hi, dtype=np.int64)
         seed_pos = seed_pos[use[site[seed_pos]]]
         if seed_pos.size == 0 or use.sum() < 4 or n_f == 0:
@@ -247,7 +229,7 @@ class FrontSearch:
             dup_rows=dup_rows,
             same_before=same_seed[mg[rm[dup_rows]]].astype(np.int8),
         )
-        out: list[FrontResult] = []
+        out: list[SeedResult] = []
         for f in range(n_f):
             tol_f = self._tol_base + float(self.scales_ns[f])
             trip_ok = excess_norm <= C_M_PER_NS * tol_f * xy / np.maximum(norm0, 1e-300)
@@ -265,11 +247,11 @@ class FrontSearch:
         width: F64Array,
         trip_ok: BoolArray,
         p_max: float,
-    ) -> FrontResult:
+    ) -> SeedResult:
         """The front statistic at scale ``f`` from triples solved once (see module doc)."""
         w_ns = float(self.scales_ns[f])
         empty = np.zeros(0, dtype=np.int64)
-        none = FrontResult(f, empty, np.zeros(0), empty, empty, empty)
+        none = SeedResult(f, empty, np.zeros(0), empty, empty, empty)
         mg, a, b, rm, kk = ts.mg, ts.a, ts.b, ts.rm, ts.kk
         pair_ok = in_slot[mg, a] & in_slot[mg, b] & trip_ok  # per triple
         if not pair_ok.any():
@@ -347,7 +329,7 @@ class FrontSearch:
             members = np.concatenate([[row[a[tr]], row[b[tr]]], row[cons[best[j]]]])
             groups.append(ts.members[members].astype(np.int64))
             owners.append(np.full(members.size, j, dtype=np.int64))
-        return FrontResult(
+        return SeedResult(
             f,
             ts.seeds[bs],
             p,

@@ -74,20 +74,30 @@ class EngineConfig(BaseModel):
     """A batch arriving later than this after the start of its live interval is late."""
 
 
-def load_engine_config(path: str | Path | None) -> EngineConfig:
-    """Read the ``[engine]`` table of a TOML file (defaults when ``path`` is None)."""
-    if path is None:
-        return EngineConfig()
+def read_toml(path: str | Path) -> dict[str, Any]:
+    """Parse a TOML config file; errors name the file."""
     p = Path(path)
     try:
-        data: dict[str, Any] = tomllib.loads(p.read_text(encoding="utf-8"))
+        return tomllib.loads(p.read_text(encoding="utf-8"))
     except FileNotFoundError:
         raise ConfigError(f"config file {str(p)!r} does not exist") from None
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"config file {str(p)!r} is not valid TOML: {exc}") from exc
+
+
+def validation_error(path: str | Path, exc: ValidationError, prefix: str = "") -> ConfigError:
+    """A ConfigError naming the file and the dotted key of the first problem."""
+    err = exc.errors()[0]
+    loc = ".".join(str(x) for x in err["loc"])
+    return ConfigError(f"config file {str(path)!r}: {prefix}{loc}: {err['msg']}")
+
+
+def load_engine_config(path: str | Path | None) -> EngineConfig:
+    """Read the ``[engine]`` table of a TOML file (defaults when ``path`` is None)."""
+    if path is None:
+        return EngineConfig()
+    data = read_toml(path)
     try:
         return EngineConfig.model_validate(data.get("engine", {}))
     except ValidationError as exc:
-        err = exc.errors()[0]
-        loc = ".".join(str(x) for x in err["loc"])
-        raise ConfigError(f"config file {str(p)!r}: engine.{loc}: {err['msg']}") from exc
+        raise validation_error(path, exc, "engine.") from exc

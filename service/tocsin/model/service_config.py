@@ -31,7 +31,6 @@ Environment variables override secrets and the broker address:
 from __future__ import annotations
 
 import os
-import tomllib
 from pathlib import Path
 from typing import Annotated, Any
 from urllib.parse import urlsplit
@@ -40,7 +39,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from tocsin.errors import ConfigError
 from tocsin.live.topics import DEFAULT_ROOT, check_root
-from tocsin.model.config import EngineConfig
+from tocsin.model.config import EngineConfig, read_toml, validation_error
 
 ENV_URL = "TOCSIN_BROKER_URL"
 ENV_USER = "TOCSIN_BROKER_USERNAME"
@@ -115,12 +114,7 @@ def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) 
     """
     p = Path(path)
     environ = dict(os.environ) if env is None else env
-    try:
-        data: dict[str, Any] = tomllib.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise ConfigError(f"config file {str(p)!r} does not exist") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"config file {str(p)!r} is not valid TOML: {exc}") from exc
+    data = read_toml(p)
     overrides = {
         k: environ[e]
         for k, e in (("url", ENV_URL), ("username", ENV_USER), ("password", ENV_PASSWORD))
@@ -131,9 +125,7 @@ def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) 
     try:
         cfg = ServiceConfig.model_validate(data)
     except ValidationError as exc:
-        err = exc.errors()[0]
-        loc = ".".join(str(x) for x in err["loc"])
-        raise ConfigError(f"config file {str(p)!r}: {loc}: {err['msg']}") from exc
+        raise validation_error(p, exc) from exc
     base = p.resolve().parent
     upd: dict[str, Any] = {
         "registry": _rel(base, cfg.registry),
