@@ -304,3 +304,20 @@ def test_far_to_chance() -> None:
     assert float(far_to_chance(1.0, 1.0)) == pytest.approx(1.0 - np.exp(-1.0), rel=1e-14)
     assert float(far_to_chance(1e-12, 3.0)) == pytest.approx(3e-12, rel=1e-9)
     assert float(far_to_chance(0.0, 5.0)) == 0.0
+
+
+def test_truncated_poisson_binomial_matches_scipy() -> None:
+    """Truncated DP: exact P(K = k) below the top, P(K >= top) in the last column
+    (reference: scipy.stats.poisson_binom, SciPy >= 1.15)."""
+    from scipy import stats as sps
+
+    from tocsin.engine.stats import poisson_binomial_pmf_top
+
+    rng = np.random.default_rng(7)
+    q = rng.uniform(0.0, 0.3, size=(5, 60))
+    top = 9
+    got = poisson_binomial_pmf_top(q, top)
+    for r in range(q.shape[0]):
+        ref = sps.poisson_binom(q[r])
+        np.testing.assert_allclose(got[r, :top], ref.pmf(np.arange(top)), rtol=1e-10, atol=0)
+        np.testing.assert_allclose(got[r, top], ref.sf(top - 1), rtol=1e-10)

@@ -41,7 +41,7 @@ import numpy as np
 
 from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
 from tocsin.engine.pairs import window_pairs
-from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_rows
+from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_top
 from tocsin.model.config import CoincidenceConfig
 from tocsin.model.registry import SiteRegistry
 from tocsin.types import BoolArray, F64Array, I32Array, I64Array
@@ -106,6 +106,56 @@ class SlotGeometry:
         self.ahead_ns = [int(h.max()) for h in self.hi]
 
 
+TAIL_SD = 12.0
+"""Poisson-binomial tables are kept exactly up to mean + 12 sd + 12 sites; beyond,
+chance is below ~1e-17 and the p-value is reported as that tail (a bound)."""
+
+
+def _null_tables(q: F64Array, active: BoolArray, e: F64Array) -> tuple[F64Array, F64Array]:
+    """``P(K > k)`` and ``P(K = k)`` per seed site (rows), exact for the counts that
+    matter: computed for active rows only, truncated at mean + TAIL_SD sd + 12."""
+    n = q.shape[0]
+    rows = np.flatnonzero(active)
+    mu = float(e[rows].max()) if rows.size else 0.0
+    k_top = min(n, int(np.ceil(mu + TAIL_SD * np.sqrt(mu) + 12)))
+    tail_gt = np.ones((n, n + 1))
+    point = np.zeros((n, n + 1))
+    if rows.size and k_top >= n:  # small network: the full, exact distribution
+        pmf = poisson_binomial_pmf_top(q[rows], n)
+        ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]
+        tail_gt[rows] = np.clip(np.concatenate([ge[:, 1:], np.zeros((rows.size, 1))], 1), 0, 1)
+        point[rows] = pmf
+    elif rows.size:
+        pmf = poisson_binomial_pmf_top(q[rows], k_top)  # (R, k_top + 1), last = P(>= k_top)
+        # exact below k_top; at and above it, P(K > k) is bounded by P(K >= k_top)
+        ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]  # P(K >= k), k = 0 .. k_top
+        gt = np.zeros((rows.size, n + 1))
+        gt[:, :k_top] = ge[:, 1:]
+        gt[:, k_top:] = pmf[:, k_top : k_top + 1]
+        pt = np.zeros((rows.size, n + 1))
+        pt[:, :k_top] = pmf[:, :k_top]
+        tail_gt[rows] = np.clip(gt, 0.0, 1.0)
+        point[rows] = pt
+    return tail_gt, point
+
+
+NO_PREVIOUS_NS = -(2**62)
+"""Stands for "no previous hit": far below any GPS time, and differences stay in int64."""
+
+
+def _previous_same_site(t: I64Array, site: I32Array) -> I64Array:
+    """For each hit, the time (GPS ns) of the previous hit of the same site, or
+    :data:`NO_PREVIOUS_NS`."""
+    order = np.lexsort((t, site))
+    ts, ss = t[order], site[order]
+    prev_sorted = np.full(t.size, NO_PREVIOUS_NS, dtype=np.int64)
+    same = ss[1:] == ss[:-1]
+    prev_sorted[1:][same] = ts[:-1][same]
+    out = np.empty(t.size, dtype=np.int64)
+    out[order] = prev_sorted
+    return out
+
+
 class CoincidenceTrigger:
     """The ``sites`` statistic at every scale; the ``front`` statistic is added by
     :class:`tocsin.engine.front.FrontSearch` through :meth:`extra_trial_rate`."""
@@ -147,12 +197,13 @@ class CoincidenceTrigger:
             # either: its hits would re-find every cluster of quieter sites.
             mean_w = (self.geom.width[k] * not_self).sum(axis=1) / max(n - 1, 1)
             quiet = -np.expm1(-lam * mean_w) <= self.cfg.occupancy_cap
-            active = ok & fresh & enough & quiet & (lam > 0)
+            # A multiplicity test where chance alone fills many slots has no power
+            # (that is the excess trigger's ground): not evaluated, not a trial.
+            sparse = e <= self.cfg.max_expected_neighbours
+            active = ok & fresh & enough & quiet & sparse & (lam > 0)
             prev_e = np.where(active, e, prev_e)
-            pmf = poisson_binomial_pmf_rows(q)  # (N, N + 1)
-            tail_ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]
-            tail_gt = np.concatenate([tail_ge[:, 1:], np.zeros((n, 1))], axis=1)
-            scales.append(ScaleTables(q, active, np.clip(tail_gt, 0.0, 1.0), pmf))
+            tail_gt, point = _null_tables(q, active, e)
+            scales.append(ScaleTables(q, active, tail_gt, point))
             trial += float(np.sum(lam[active] * f[active])) * 1e9
         return Tables(lam, tuple(scales), trial)
 
@@ -189,7 +240,11 @@ class CoincidenceTrigger:
         d = (t_sub[pr.nb] - t[seed_pos][pr.seed]).astype(np.float64)
         lo = self.geom.lo[s_seed, s_nb]
         hi = self.geom.hi[k][s_seed, s_nb]
+        # Only the earliest hit of a site in the slot counts: a hit whose site's
+        # previous hit is already inside the slot is not the earliest.
+        prev = _previous_same_site(t_sub, s_sub)
         keep = (st.q[s_seed, s_nb] > 0) & (d >= lo) & (d <= hi)
+        keep &= prev[pr.nb] - t[seed_pos][pr.seed] < lo
         g_seed, g_nb, s_seed, s_nb, d, lo = (
             pr.seed[keep],
             pr.nb[keep],
@@ -197,16 +252,6 @@ class CoincidenceTrigger:
             s_nb[keep],
             d[keep],
             lo[keep],
-        )
-        # Earliest hit per (seed, neighbour site): pairs are in (seed, time) order.
-        _, first = np.unique(g_seed * self.n_sites + s_nb, return_index=True)
-        g_seed, g_nb, s_seed, s_nb, d, lo = (
-            g_seed[first],
-            g_nb[first],
-            s_seed[first],
-            s_nb[first],
-            d[first],
-            lo[first],
         )
         lam = tables.rates_per_ns[s_nb]
         w = self.geom.width[k][s_seed, s_nb]

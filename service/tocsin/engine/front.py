@@ -40,7 +40,12 @@ from tocsin.engine.coincidence import SeedResult, SlotGeometry
 from tocsin.engine.direction import seed_baselines, solve_triples
 from tocsin.engine.geometry import ellipsoid_up
 from tocsin.engine.pairs import window_pairs
-from tocsin.engine.stats import fisher_combined_sf, pb_sf_table, poisson_binomial_pmf_rows
+from tocsin.engine.stats import (
+    fisher_combined_sf,
+    pb_sf_table,
+    poisson_binomial_pmf_rows,
+    poisson_binomial_pmf_top,
+)
 from tocsin.model.config import CoincidenceConfig
 from tocsin.model.registry import SiteRegistry
 from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I32Array, I64Array
@@ -97,8 +102,7 @@ class FrontSearch:
             width = self.hi[k] - self.lo[None, :, :][0]
             q = f[None, :] * -np.expm1(-lam[None, :] * width)
             q = np.where(use[None, :] & ~np.eye(self.n_sites, dtype=bool), q, 0.0)[use]
-            tail = pb_sf_table(poisson_binomial_pmf_rows(q))
-            p3 = tail[:, 3] if tail.shape[1] > 3 else np.zeros(q.shape[0])
+            p3 = poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
             total += float(np.sum(lam[use] * f[use] * p3))
         return total * 1e9
 

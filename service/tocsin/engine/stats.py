@@ -100,6 +100,37 @@ def poisson_binomial_pmf_rows(q: ArrayLike) -> F64Array:
     return pmf
 
 
+def poisson_binomial_pmf_top(q: ArrayLike, k_top: int) -> F64Array:
+    """Poisson-binomial pmf of each row, truncated: shape ``(R, k_top + 1)``.
+
+    Columns ``0 .. k_top - 1`` are exact ``P(K = k)``; column ``k_top`` holds
+    ``P(K >= k_top)`` (an absorbing top state in the same DP). Costs R x N x
+    k_top instead of R x N^2, for large networks where only the low counts and
+    a far tail matter.
+    """
+    qq = _f64(q)
+    if qq.ndim != 2:
+        raise ValueError(f"q must have shape (R, N), got shape {qq.shape}")
+    if k_top < 1:
+        raise ValueError(f"k_top must be >= 1, got {k_top}")
+    r, n = qq.shape
+    if k_top >= n:
+        full = poisson_binomial_pmf_rows(qq)
+        out = np.zeros((r, k_top + 1))
+        out[:, : n + 1] = full
+        return _f64(out)
+    pmf = np.zeros((r, k_top + 1), dtype=np.float64)
+    pmf[:, 0] = 1.0
+    for j in range(n):
+        qj = qq[:, j : j + 1]
+        top = pmf[:, k_top] + pmf[:, k_top - 1] * qq[:, j]
+        new = pmf[:, :k_top] * (1.0 - qj)
+        new[:, 1:] += pmf[:, : k_top - 1] * qj
+        pmf[:, :k_top] = new
+        pmf[:, k_top] = top
+    return pmf
+
+
 def poisson_binomial_pmf(q: ArrayLike) -> F64Array:
     """Poisson-binomial pmf, shape ``(N + 1,)``, of N independent success probabilities."""
     qq = _f64(q)

@@ -44,6 +44,9 @@ class CoincidenceConfig(BaseModel):
     redundancy_ratio: Annotated[float, Field(ge=1.0)] = 3.0
     """A scale is skipped for a seed site when it widens the expected occupancy less than this."""
     min_multiplicity: Annotated[int, Field(ge=2)] = 2
+    max_expected_neighbours: PosFloat = 20.0
+    """A scale is not evaluated for a seed site whose slots hold more chance
+    neighbours than this on average: multiplicity has no power there."""
 
     @field_validator("scales_s", "front_scales_s")
     @classmethod
