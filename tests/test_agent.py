@@ -309,6 +309,8 @@ def test_upload_publishes_the_file_exactly(
     rng = np.random.default_rng(7)
     t0 = 1400000000 * NS_PER_S + 123_456_789
     hits = np.sort(t0 + rng.integers(0, 6_800_000_000, size=1500)).astype(np.int64)
+    quiet = (hits >= 1400000003 * NS_PER_S) & (hits < 1400000004 * NS_PER_S)
+    hits[quiet] -= NS_PER_S  # no hit in second 3: that batch is a heartbeat
     hits[10] = hits[11]  # a repeated time is two hits
     hits[-1] = 1400000007 * NS_PER_S  # the last hit exactly on a batch boundary
     hits.sort()
@@ -346,6 +348,8 @@ def test_upload_publishes_the_file_exactly(
     got = np.concatenate([b.t for b in batches])
     assert got.tolist() == hits.tolist()  # every hit exactly once
     assert max(b.n_hits for b in batches) <= 150 < len(hits) / 7  # size splits happened
+    (beat,) = [b for b in batches if b.n_hits == 0]  # an empty batch still reports live time
+    assert (beat.live_start, beat.live_end) == (1400000003 * NS_PER_S, 1400000004 * NS_PER_S)
     assert col.states()[-1] == "offline"  # retained, published on the clean exit
     assert segments(spool) == [] and read_pending(spool) == []
 
@@ -488,9 +492,15 @@ def test_sigkilled_agent_restarts_with_its_spool(
         await col.register()
         task = asyncio.create_task(col.run())
         second = await asyncio.create_subprocess_exec(
-            *agent_cmd(mosquitto, spool, "--source", "sim:50", "--duration", "1.5"), cwd=ROOT
+            *agent_cmd(mosquitto, spool, "--source", "sim:50"), cwd=ROOT
         )
-        assert await asyncio.wait_for(second.wait(), 30) == 0
+        try:
+            await until(lambda: len(first_arrivals(col.batches(small_registry))) > len(left) + 4,
+                        30, "the spooled batches and new ones")
+        finally:
+            second.send_signal(signal.SIGTERM)  # a clean stop: exit 0, status offline
+            code = await asyncio.wait_for(second.wait(), 30)
+        assert code == 0
         await until(lambda: "offline" in col.states(), 10, "offline status")
         await asyncio.sleep(0.3)
         task.cancel()

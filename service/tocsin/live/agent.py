@@ -19,7 +19,8 @@ jump in seq).
 Status: retained JSON on ``{root}/site/{site}/status``, ``state`` ``online``,
 ``spooling`` (connected, still sending batches held while offline) or
 ``offline`` (the last will, and the clean exit), at each connect, each change
-and every ``status_every_s``.
+and every ``status_every_s``. The will is registered at connect time, so its
+``t_gps_ns``, ``spooled`` and ``seq`` are those of the moment of connecting.
 
 Caveat: over MQTT 3.1.1 a broker also acknowledges a publish that its ACL
 refuses (and drops it). A site whose credentials may not write its own hits
@@ -61,6 +62,8 @@ UPLOAD_STEP_BATCHES = 256
 COMMIT_EVERY_S = 1.0
 """How often acknowledgements are saved and sent segments deleted (s)."""
 CONNECT_TIMEOUT_S = 15.0
+TASK_END_TIMEOUT_S = 15.0
+"""How long a cancelled task may take to finish (a clean MQTT disconnect takes <= 10 s)."""
 STATUS_TIMEOUT_S = 5.0
 DROP_REPORT_EVERY_S = 10.0
 MAX_FUTURE_END_S = 60.0
@@ -238,7 +241,7 @@ class _Batcher:
         self.stats = stats
         self.last_mark: int | None = None
         self._drops = 0
-        self._drops_logged = time.monotonic()
+        self._drops_logged = time.monotonic() - DROP_REPORT_EVERY_S  # the first is reported
 
     def up(self, at_ns: int) -> None:
         if not self.cutter.is_open:
@@ -250,11 +253,11 @@ class _Batcher:
     def put(self, t: I64Array) -> None:
         dropped = self.cutter.put(t)
         self.stats.hits_in += int(t.size)
-        if dropped:
+        if dropped:  # reported at most every DROP_REPORT_EVERY_S, with the count since
             self.stats.hits_dropped += dropped
             self._drops += dropped
             now = time.monotonic()
-            if now - self._drops_logged >= DROP_REPORT_EVERY_S or self._drops == dropped:
+            if now - self._drops_logged >= DROP_REPORT_EVERY_S:
                 event(log, "hits_dropped", logging.WARNING, count=self._drops,
                       reason="older than the open batch (arrived after its batch was closed)")
                 self._drops, self._drops_logged = 0, now
@@ -420,7 +423,7 @@ class Agent:
     ) -> None:
         s = self.settings
         source.cancel()
-        await asyncio.wait([source])
+        await asyncio.wait([source], timeout=TASK_END_TIMEOUT_S)
         if self.upload and self._cutter.is_open:
             event(log, "upload_stopped", logging.WARNING, not_sent_from_gps_ns=self._cutter.start)
         elif self._cutter.is_open:  # close the open batch where the data is complete
@@ -432,16 +435,9 @@ class Agent:
         if self.connected:
             await self._drain(s.flush_timeout_s)
         status.cancel()
-        await asyncio.wait([status])
-        client = self._client
-        if client is not None:
-            try:
-                await client.publish(self.status_topic, self._status_payload("offline"), qos=1,
-                                     retain=True, timeout=STATUS_TIMEOUT_S)
-            except aiomqtt.MqttError as exc:
-                event(log, "offline_not_published", logging.WARNING, error=str(exc))
-        publisher.cancel()
-        await asyncio.wait([publisher])
+        await asyncio.wait([status], timeout=TASK_END_TIMEOUT_S)
+        publisher.cancel()  # publishes "offline" before it disconnects
+        await asyncio.wait([publisher], timeout=TASK_END_TIMEOUT_S)
         if self._refusing is not None:
             self._end_refusing()
         if self.spool.pending:
@@ -645,9 +641,17 @@ class Agent:
         self._backlog = self.spool.pending > 0
         event(log, "connected", broker=self.settings.broker.url, pending=self.spool.pending)
         self._status_due.set()
-        async with asyncio.TaskGroup() as tg:
-            tg.create_task(self._watch(client), name="agent-connection-watch")
-            await self._send(client, tg)
+        try:
+            async with asyncio.TaskGroup() as tg:
+                tg.create_task(self._watch(client), name="agent-connection-watch")
+                await self._send(client, tg)
+        except asyncio.CancelledError:  # the agent stops (or failed): say so, then disconnect
+            try:
+                await client.publish(self.status_topic, self._status_payload("offline"), qos=1,
+                                     retain=True, timeout=STATUS_TIMEOUT_S)
+            except aiomqtt.MqttError as exc:
+                event(log, "offline_not_published", logging.WARNING, error=str(exc))
+            raise
 
     @staticmethod
     async def _watch(client: aiomqtt.Client) -> None:
