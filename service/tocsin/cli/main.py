@@ -20,6 +20,7 @@ COMMANDS: dict[str, str] = {
     "simulate": "tocsin.cli.simulate",
     "replay": "tocsin.cli.replay",
     "serve": "tocsin.cli.serve",
+    "demo": "tocsin.cli.demo",
     "agent": "tocsin.cli.agent",
 }
 

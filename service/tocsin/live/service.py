@@ -96,6 +96,8 @@ class Service:
         self._max_live_end = 0
         self._last_msg_wall = 0
         self._last_ckpt = time.monotonic()
+        self.listeners: list[Callable[[Candidate], None]] = []
+        """Called with every candidate written (alert emitters, the demo's display)."""
         self.pipeline = self._restore()
 
     # -- start and stop ------------------------------------------------------
@@ -249,6 +251,8 @@ class Service:
                 continue
             self._written.add(k)
             self._cand_fh.write(c.to_json_line())
+            for listener in self.listeners:
+                listener(c)
             self.metrics.candidates.labels(c.trigger, c.statistic).inc()
             ready = c.details.get("ready_gps_ns")
             if live and isinstance(ready, int):
