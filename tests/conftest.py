@@ -6,8 +6,8 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from tests.mosquitto import MOSQUITTO, Mosquitto
 
+from tests.mosquitto import MOSQUITTO, Mosquitto
 from tocsin.model.registry import Site, SiteRegistry
 
 

@@ -15,6 +15,7 @@ from pathlib import Path
 
 import aiomqtt
 import orjson
+
 from tests.mosquitto import Mosquitto, free_port
 
 ROOT = Path(__file__).resolve().parents[1]

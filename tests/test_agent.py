@@ -30,8 +30,8 @@ from astropy.time import Time
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
-from tests.mosquitto import Mosquitto
 
+from tests.mosquitto import Mosquitto
 from tocsin.cli.main import main
 from tocsin.gpstime import gps_now_ns, gps_ns_to_utc_iso
 from tocsin.live.agent import Agent, AgentSettings, Cutter, upload_span

@@ -16,8 +16,8 @@ from __future__ import annotations
 import math
 
 import pytest
-from tests.netsim import run_pipeline, small_network
 
+from tests.netsim import run_pipeline, small_network
 from tocsin.gpstime import utc_to_gps_ns
 from tocsin.model.candidate import Candidate
 from tocsin.sim import build_scenario, iter_batches, simulate

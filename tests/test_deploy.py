@@ -31,8 +31,8 @@ from pathlib import Path
 
 import aiomqtt
 import pytest
-from tests.mosquitto import MOSQUITTO, Mosquitto, free_port
 
+from tests.mosquitto import MOSQUITTO, Mosquitto, free_port
 from tocsin.live.topics import (
     DEFAULT_ROOT,
     alerts_topic,

@@ -14,8 +14,8 @@ import math
 import pytest
 from astropy import units as u
 from astropy.coordinates import SkyCoord
-from tests.netsim import run_pipeline
 
+from tests.netsim import run_pipeline
 from tocsin.gpstime import utc_to_gps_ns
 from tocsin.model.candidate import Candidate
 from tocsin.sim import build_scenario, iter_batches, parse_injection, shipped_registry, simulate

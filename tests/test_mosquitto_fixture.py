@@ -6,6 +6,7 @@ import asyncio
 
 import aiomqtt
 import pytest
+
 from tests.mosquitto import Mosquitto
 
 pytestmark = pytest.mark.broker

@@ -9,8 +9,8 @@ from pathlib import Path
 
 import orjson
 import pytest
-from tests.netsim import run_pipeline
 
+from tests.netsim import run_pipeline
 from tocsin.cli.main import main
 from tocsin.io.recording import read_recording
 from tocsin.model.registry import SiteRegistry

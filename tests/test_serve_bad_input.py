@@ -27,6 +27,7 @@ from tests.mosquitto import Mosquitto, free_port
 pytestmark = [pytest.mark.broker, pytest.mark.slow]
 
 MAX_BYTES = 65_536
+REJECTED_METRIC = r'tocsin_batches_rejected_total\{reason="(\w+)"\} ([0-9.e+]+)'
 
 
 def _malformed(rng: random.Random, good: list[dict[str, object]]) -> tuple[str, str, bytes]:
@@ -71,7 +72,7 @@ def test_a_thousand_bad_messages_mixed_with_good_ones(mosquitto: Mosquitto, tmp_
     bad = [_malformed(rng, good) for _ in range(1200)]
     # shuffle bad ones in between the good ones, keeping the good ones in order
     stream: list[bytes | tuple[str, bytes]] = list(good_lines)
-    for reason, topic, payload in bad:
+    for _reason, topic, payload in bad:
         stream.insert(rng.randrange(len(stream) + 1), (topic, payload))
     port = free_port()
     cfg = write_config(tmp_path, mosquitto, metrics_port=port, max_message_bytes=MAX_BYTES)
@@ -84,13 +85,14 @@ def test_a_thousand_bad_messages_mixed_with_good_ones(mosquitto: Mosquitto, tmp_
     assert svc.proc is not None and svc.proc.poll() is None
     counted = {
         m.group(1): float(m.group(2))
-        for m in re.finditer(r'tocsin_batches_rejected_total\{reason="(\w+)"\} ([0-9.e+]+)', metrics)
+        for m in re.finditer(REJECTED_METRIC, metrics)
     }
     expected = Counter(r for r, _, _ in bad)
     assert counted == {k: float(v) for k, v in expected.items()}, (counted, expected)
     assert svc.stop(signal.SIGTERM) == 0
     journal = journal_lines(tmp_path / "data")
     assert {(j["site"], j["seq"]) for j in journal} == {(g["site"], g["seq"]) for g in good}
-    rejected = [json.loads(x) for x in (tmp_path / "data" / "rejected.jsonl").read_text().splitlines()]
+    rejected_log = (tmp_path / "data" / "rejected.jsonl").read_text()
+    rejected = [json.loads(x) for x in rejected_log.splitlines()]
     assert len(rejected) == len(bad)
     assert all(r["reason"] and r["detail"] for r in rejected)

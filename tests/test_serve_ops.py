@@ -8,6 +8,7 @@ import signal
 from pathlib import Path
 
 import pytest
+
 from tests.livenet import (
     ServiceProcess,
     demo_lines,
