@@ -17,7 +17,7 @@ def add_parser(sub: Any) -> None:
         help="the whole chain on one machine: broker, 40 simulated sites, service, an event",
         description=(
             "Start an embedded MQTT broker, 40 simulated site agents (the shipped invented "
-            "network), and the service; inject a plane front about 20 s in; show the network's "
+            "network), and the service; inject a plane front (six to eight GPS-timed sites) about 20 s in; show the network's "
             "status and the candidate when it fires, then exit 0 (1 if it did not fire)."
         ),
     )
@@ -27,6 +27,11 @@ def add_parser(sub: Any) -> None:
         help="where journal, candidates and spools go (default: a new temporary directory)",
     )
     p.add_argument("--keep-running", action="store_true", help="keep going until Ctrl-C")
+    p.add_argument(
+        "--seed",
+        type=int,
+        help="seed of the simulated detectors and the event (default: from the clock)",
+    )
     p.add_argument(
         "--timeout",
         type=float,
@@ -39,4 +44,6 @@ def run(args: argparse.Namespace) -> int:
     if not args.timeout > 0:
         raise ValueError(f"--timeout {args.timeout!r} must be positive")
     workdir = args.workdir or Path(tempfile.mkdtemp(prefix="tocsin-demo-"))
-    return asyncio.run(run_demo(workdir, keep_running=args.keep_running, timeout_s=args.timeout))
+    return asyncio.run(
+        run_demo(workdir, keep_running=args.keep_running, timeout_s=args.timeout, seed=args.seed)
+    )

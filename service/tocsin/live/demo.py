@@ -3,7 +3,7 @@
 An embedded broker; the shipped scenario's 40 invented sites as simulated agents
 in this process (the same :class:`~tocsin.live.agent.Agent` as ``tocsin agent``,
 with a simulated detector at each site's rate); the service; and, about 20 s
-in, a plane front injected into six GPS-timed sites. The service starts with
+in, a plane front injected into six to eight GPS-timed sites far apart. The service starts with
 150 s of simulated history already received (as after a restart from its
 journal), so its rate estimates are warm and the front can be judged at once.
 Everything (journal, candidates, spools) goes to a working directory.
@@ -17,7 +17,6 @@ import json
 import socket
 import sys
 import time
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TextIO
@@ -39,7 +38,9 @@ from tocsin.types import C_M_PER_NS, NS_PER_S
 
 HISTORY_S = 150
 FRONT_AFTER_S = 20.0
-FRONT_SITES = 6
+FRONT_SITES = 8
+"""Sites the injected front crosses (fewer if fewer GPS-timed sites see it; at least 6)."""
+MIN_FRONT_SITES = 6
 MIN_ELEVATION_DEG = 15.0
 
 
@@ -97,7 +98,7 @@ def plan_front(
     best_n, best_span, best_vis = dirs[0], -1.0, np.zeros(0, dtype=np.int64)
     for n in dirs:
         vis = np.flatnonzero(up @ n > sin_min)
-        if vis.size < FRONT_SITES:
+        if vis.size < MIN_FRONT_SITES:
             continue
         p = pos[vis]
         span = float(np.max(np.linalg.norm(p[:, None] - p[None], axis=-1)))
@@ -106,7 +107,7 @@ def plan_front(
     p = pos[best_vis]
     d = np.linalg.norm(p[:, None] - p[None], axis=-1)
     pick = [int(x) for x in np.unravel_index(int(np.argmax(d)), d.shape)]
-    while len(pick) < FRONT_SITES:
+    while len(pick) < min(FRONT_SITES, best_vis.size):
         pick.append(int(np.argmax(np.min(d[:, pick], axis=1))))
     ra, dec = ecef_unit_to_radec(best_n, t0_ns)
     n = radec_to_ecef_unit(ra, dec, t0_ns)
@@ -125,10 +126,19 @@ def _free_port() -> int:
 
 
 async def run_demo(
-    workdir: Path, *, keep_running: bool = False, timeout_s: float = 90.0, out: TextIO = sys.stdout
+    workdir: Path,
+    *,
+    keep_running: bool = False,
+    timeout_s: float = 90.0,
+    seed: int | None = None,
+    out: TextIO | None = None,
 ) -> int:
-    """Run the demo; returns 0 when the injected front came back as a candidate."""
-    say: Callable[[str], None] = lambda s: print(s, file=out, flush=True)  # noqa: E731
+    """Run the demo; returns 0 when the injected front came back as a candidate.
+    Prints to ``out`` (default: the current ``sys.stdout``)."""
+
+    def say(text: str) -> None:
+        print(text, file=out or sys.stdout, flush=True)
+
     reg = shipped_registry()
     workdir.mkdir(parents=True, exist_ok=True)
     (workdir / "network.toml").write_text(reg.to_toml())
@@ -140,7 +150,7 @@ async def run_demo(
         broker=broker,
         metrics=MetricsConfig(port=0),
     )
-    rng = np.random.default_rng(int(time.time()))
+    rng = np.random.default_rng(int(time.time()) if seed is None else seed)
     async with embedded_broker("127.0.0.1", port) as url:
         say(f"tocsin demo: embedded broker {url}, {len(reg)} invented sites, work dir {workdir}")
         now = gps_now_ns()
