@@ -17,8 +17,9 @@ def add_parser(sub: Any) -> None:
         help="the whole chain on one machine: broker, 40 simulated sites, service, an event",
         description=(
             "Start an embedded MQTT broker, 40 simulated site agents (the shipped invented "
-            "network), and the service; inject a plane front (six to eight GPS-timed sites) about 20 s in; show the network's "
-            "status and the candidate when it fires, then exit 0 (1 if it did not fire)."
+            "network), and the service; inject a plane front (six to eight GPS-timed sites) "
+            "about 20 s in; show the network's status and the candidate when it fires, then "
+            "exit 0 (1 if it did not fire)."
         ),
     )
     p.add_argument(
