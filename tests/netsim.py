@@ -45,43 +45,40 @@ def small_network(seed: int = 3) -> tuple[SiteRegistry, dict[str, float]]:
     rng = np.random.default_rng(seed)
     sites: list[Site] = []
     rates: dict[str, float] = {}
+
+    def add(sid: str, lat: float, lon: float, sigma_ns: float, kind: str, rate: float) -> None:
+        sites.append(
+            Site(
+                id=sid, lat_deg=lat, lon_deg=lon, height_m=100.0, clock_sigma_ns=sigma_ns, kind=kind
+            )
+        )
+        rates[sid] = rate
+
     for i in range(8):
-        sid = f"fen-station-{i}"
-        sites.append(
-            Site(
-                id=sid,
-                lat_deg=45 + rng.uniform(-6, 6),
-                lon_deg=5 + rng.uniform(-8, 8),
-                height_m=200.0,
-                clock_sigma_ns=rng.uniform(30, 90),
-                kind="scintillator",
-            )
+        add(
+            f"fen-station-{i}",
+            45 + rng.uniform(-6, 6),
+            5 + rng.uniform(-8, 8),
+            rng.uniform(30, 90),
+            "scintillator",
+            rng.uniform(4, 12),
         )
-        rates[sid] = rng.uniform(4, 12)
     for i in range(4):
-        sid = f"moor-counter-{i}"
-        sites.append(
-            Site(
-                id=sid,
-                lat_deg=rng.uniform(-40, 60),
-                lon_deg=rng.uniform(-120, 140),
-                height_m=50.0,
-                clock_sigma_ns=rng.uniform(1e6, 5e6),
-                kind="counter",
-            )
+        add(
+            f"moor-counter-{i}",
+            rng.uniform(-40, 60),
+            rng.uniform(-120, 140),
+            rng.uniform(1e6, 5e6),
+            "counter",
+            rng.uniform(0.5, 2),
         )
-        rates[sid] = rng.uniform(0.5, 2)
     for i in range(4):
-        sid = f"pocket-cam-{i}"
-        sites.append(
-            Site(
-                id=sid,
-                lat_deg=rng.uniform(-40, 60),
-                lon_deg=rng.uniform(-120, 140),
-                height_m=50.0,
-                clock_sigma_ns=1e8,
-                kind="camera-sensor",
-            )
+        add(
+            f"pocket-cam-{i}",
+            rng.uniform(-40, 60),
+            rng.uniform(-120, 140),
+            1e8,
+            "camera-sensor",
+            rng.uniform(10, 30) / 3600,
         )
-        rates[sid] = rng.uniform(10, 30) / 3600
     return SiteRegistry(sites), rates

@@ -29,7 +29,7 @@ from tocsin.gpstime import gps_now_ns, gps_ns_to_utc_iso
 from tocsin.live.agent import Agent, AgentSettings
 from tocsin.live.embedded_broker import embedded_broker
 from tocsin.live.service import Service
-from tocsin.live.sources import TICK_S, HitSink, SimSource
+from tocsin.live.sources import SimSource
 from tocsin.model.candidate import Candidate
 from tocsin.model.registry import SiteRegistry
 from tocsin.model.service_config import BrokerConfig, MetricsConfig, ServiceConfig
@@ -42,31 +42,6 @@ FRONT_SITES = 8
 """Sites the injected front crosses (fewer if fewer GPS-timed sites see it; at least 6)."""
 MIN_FRONT_SITES = 6
 MIN_ELEVATION_DEG = 15.0
-
-
-class InjectingSource(SimSource):
-    """A simulated detector that also emits given extra hits (GPS ns) when their time comes."""
-
-    def __init__(self, rate_hz: float, *, seed: int, extra: list[int]) -> None:
-        super().__init__(rate_hz, seed=seed)
-        self.extra = np.asarray(sorted(extra), dtype=np.int64)
-
-    async def run(self, sink: HitSink) -> None:
-        last = gps_now_ns()
-        sink.up(last)
-        while True:
-            await asyncio.sleep(TICK_S)
-            now = gps_now_ns()
-            if now <= last:
-                continue
-            n = int(self.rng.poisson(self.rate_hz * (now - last) / NS_PER_S))
-            t = self.rng.integers(last, now, size=n, dtype=np.int64)
-            due = (self.extra >= last) & (self.extra < now)
-            t = np.sort(np.concatenate([t, self.extra[due]]))
-            self.stats.hits += t.size
-            sink.put(t)
-            sink.mark(now)
-            last = now
 
 
 @dataclass
@@ -181,7 +156,7 @@ async def run_demo(
                 spool_dir=spool,
             )
             extra = [front.hits[site.id]] if site.id in front.hits else []
-            src = InjectingSource(
+            src = SimSource(
                 SHIPPED_RATES_HZ[site.id], seed=int(rng.integers(2**31)) + i, extra=extra
             )
             agents.append(Agent(settings, src))

@@ -119,8 +119,9 @@ class LineParser:
         self.name = name
         self.stats = SourceStats()
 
-    def parse(self, lines: Iterable[bytes], *, reject: Callable[[int], str | None] | None = None
-              ) -> I64Array:
+    def parse(
+        self, lines: Iterable[bytes], *, reject: Callable[[int], str | None] | None = None
+    ) -> I64Array:
         """Hit times of ``lines`` (in order); ``reject(t)`` may refuse a time with a reason."""
         out: list[int] = []
         st = self.stats
@@ -152,8 +153,13 @@ class LineParser:
             st.bad.append((line_no, reason))
             event(log, "bad_line", logging.WARNING, source=self.name, line=line_no, reason=reason)
         elif st.bad_lines == MAX_BAD_LINES_SHOWN + 1:
-            event(log, "bad_lines_not_shown", logging.WARNING, source=self.name,
-                  after=MAX_BAD_LINES_SHOWN)
+            event(
+                log,
+                "bad_lines_not_shown",
+                logging.WARNING,
+                source=self.name,
+                after=MAX_BAD_LINES_SHOWN,
+            )
 
 
 class HitSink(Protocol):
@@ -281,8 +287,13 @@ class StreamSource(RealtimeSource):
                 if self.stall_ns and now - last_alive > self.stall_ns:
                     sink.down(last_alive + self.stall_ns)
                     state = stalled
-                    event(log, "source_stalled", logging.WARNING, source=self.describe(),
-                          silent_s=self.stall_ns / NS_PER_S)
+                    event(
+                        log,
+                        "source_stalled",
+                        logging.WARNING,
+                        source=self.describe(),
+                        silent_s=self.stall_ns / NS_PER_S,
+                    )
                 else:
                     sink.mark(now - self.grace_ns)
             await _readable(fd, TICK_S)
@@ -321,12 +332,14 @@ class SimSource(RealtimeSource):
     10 s (suspended), the missed span is dead time, not simulated.
     """
 
-    def __init__(self, rate_hz: float, *, seed: int | None) -> None:
+    def __init__(self, rate_hz: float, *, seed: int | None, extra: Iterable[int] = ()) -> None:
+        """``extra``: hit times (GPS ns) to add when their time comes (an injected signal)."""
         if not (0.0 < rate_hz <= 1e6):
             raise ValueError(f"sim rate {rate_hz!r} Hz must be in (0, 1e6]")
         self.rate_hz = rate_hz
         self.rng = np.random.default_rng(seed)
         self.stats = SourceStats()
+        self.extra = np.sort(np.asarray(list(extra), dtype=np.int64))
 
     def describe(self) -> str:
         return f"sim:{self.rate_hz:g}"
@@ -345,8 +358,12 @@ class SimSource(RealtimeSource):
                 last = now
                 continue
             n = int(self.rng.poisson(self.rate_hz * (now - last) / NS_PER_S))
-            t = np.sort(self.rng.integers(last, now, size=n, dtype=np.int64))
-            self.stats.hits += n
+            t = self.rng.integers(last, now, size=n, dtype=np.int64)
+            if self.extra.size:
+                due = (self.extra >= last) & (self.extra < now)
+                t = np.concatenate([t, self.extra[due]])
+            t = np.sort(t)
+            self.stats.hits += int(t.size)
             sink.put(t)
             sink.mark(now)
             last = now
@@ -359,12 +376,16 @@ class SourceOptions:
     stall_s: float = DEFAULT_STALL_S
 
 
-def register(scheme: str) -> Callable[[Callable[[str, SourceOptions], HitSource]],
-                                      Callable[[str, SourceOptions], HitSource]]:
+def register(
+    scheme: str,
+) -> Callable[
+    [Callable[[str, SourceOptions], HitSource]], Callable[[str, SourceOptions], HitSource]
+]:
     """Decorator: register a factory ``(arg, options) -> HitSource`` under ``scheme``."""
 
-    def deco(f: Callable[[str, SourceOptions], HitSource]) -> Callable[[str, SourceOptions],
-                                                                      HitSource]:
+    def deco(
+        f: Callable[[str, SourceOptions], HitSource],
+    ) -> Callable[[str, SourceOptions], HitSource]:
         HitSource._factories[scheme] = f
         return f
 
@@ -407,7 +428,6 @@ def open_source(spec: str, options: SourceOptions | None = None) -> HitSource:
     factory = HitSource._factories.get(scheme)
     if not sep or factory is None or not arg:
         raise ValueError(
-            f"source {spec!r} is not SCHEME:ARG with a scheme among "
-            f"{sorted(HitSource._factories)}"
+            f"source {spec!r} is not SCHEME:ARG with a scheme among {sorted(HitSource._factories)}"
         )
     return factory(arg, options or SourceOptions())
