@@ -130,8 +130,8 @@ def _summary(
         "live_site_hours": e.live_site_ns / NS_PER_S / 3600.0,
         "span_hours": (
             0.0
-            if pipe.orderer.watermark is None or e.blocks == 0
-            else (pipe.engine.t_end or 0) / NS_PER_S / 3600.0
+            if pipe.engine.t_start is None or pipe.engine.t_end is None
+            else (pipe.engine.t_end - pipe.engine.t_start) / NS_PER_S / 3600.0
         ),
         "candidates": len(latest),
         "candidates_by_kind": dict(sorted(by_kind.items())),

@@ -95,6 +95,8 @@ class Engine:
         self.counters = EngineCounters()
         self.t_end: GpsNs | None = None
         self._first_bin: int | None = None
+        self.t_start: GpsNs | None = None
+        """Start of the first block processed (GPS ns)."""
         self.last_rates_hz: F64Array | None = None
         """The latest per-site rate estimate (Hz; 0 for sites not taking part)."""
 
@@ -110,6 +112,7 @@ class Engine:
         self.t_end = block.t_end
         if self._first_bin is None:
             self._first_bin = block.t_start // self.bin_ns
+            self.t_start = block.t_start
         self.store.add(block)
         c = self.counters
         c.blocks += 1
