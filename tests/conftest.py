@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -41,3 +42,10 @@ def mosquitto(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Mosquitto]:
         yield broker
     finally:
         broker.stop()
+
+
+@pytest.fixture
+def stack() -> Iterator[contextlib.ExitStack]:
+    """Resources a test opens (service processes ...), closed even when it fails."""
+    with contextlib.ExitStack() as st:
+        yield st

@@ -80,6 +80,16 @@ class ServiceProcess:
             time.sleep(0.05)
         raise TimeoutError(f"service did not connect: {self.log.read_text()[-2000:]}")
 
+    def __enter__(self) -> ServiceProcess:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        """Never leave a service running behind a failed test."""
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait(timeout=10)
+        self.proc = None
+
     def stop(self, sig: int = signal.SIGTERM, timeout_s: float = 60.0) -> int:
         assert self.proc is not None
         self.proc.send_signal(sig)

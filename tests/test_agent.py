@@ -146,8 +146,21 @@ def segments(spool: Path) -> list[Path]:
 
 def agent_cmd(broker: Mosquitto, spool: Path, *extra: str) -> list[str]:
     return [
-        sys.executable, "-m", "tocsin.cli.main", "agent", "--site", SITE, "--broker", broker.url,
-        "--spool", str(spool), "--batch-s", "0.2", "--log-level", "warning", *extra,
+        sys.executable,
+        "-m",
+        "tocsin.cli.main",
+        "agent",
+        "--site",
+        SITE,
+        "--broker",
+        broker.url,
+        "--spool",
+        str(spool),
+        "--batch-s",
+        "0.2",
+        "--log-level",
+        "warning",
+        *extra,
     ]
 
 
@@ -167,8 +180,16 @@ def test_parse_time_against_astropy() -> None:
         gps_s = round(float(Time(whole, format="isot", scale="utc").gps))  # astropy reference
         assert parse_time(text) == gps_s * NS_PER_S + frac, text
     assert parse_time(" 1400000000123456789 ") == 1400000000123456789
-    for bad in ["2026-02-30T00:00:00Z", "2026-03-14T24:00:00Z", "12:00", "-5", "1e9",
-                "2026-03-14T00:00:01.1234567891Z", "99999999999999999999", "2015-03-14T23:59:60Z"]:
+    for bad in [
+        "2026-02-30T00:00:00Z",
+        "2026-03-14T24:00:00Z",
+        "12:00",
+        "-5",
+        "1e9",
+        "2026-03-14T00:00:01.1234567891Z",
+        "99999999999999999999",
+        "2015-03-14T23:59:60Z",
+    ]:
         with pytest.raises(ValueError, match=re.escape(repr(bad))):
             parse_time(bad)
 
@@ -178,13 +199,13 @@ def test_file_source_reports_bad_lines_by_number(
 ) -> None:
     f = tmp_path / "hits.txt"
     f.write_text(
-        "# a comment\n"                              # 1
-        "1400000000500000000\n"                      # 2
-        "\n"                                         # 3
-        "not a time\n"                               # 4
-        "2024-05-17T16:53:03.000000001Z  # note\n"   # 5
-        "1400000000100000000\n"                      # 6
-        "2024-13-01T00:00:00Z\n"                     # 7
+        "# a comment\n"  # 1
+        "1400000000500000000\n"  # 2
+        "\n"  # 3
+        "not a time\n"  # 4
+        "2024-05-17T16:53:03.000000001Z  # note\n"  # 5
+        "1400000000100000000\n"  # 6
+        "2024-13-01T00:00:00Z\n"  # 7
     )
     with caplog.at_level(logging.WARNING, logger="tocsin.agent"):
         src = open_source(f"file:{f}")
@@ -208,8 +229,9 @@ def test_cutter_batches_are_contiguous_and_complete(data: st.DataObject) -> None
     b = data.draw(st.integers(1, 1000), label="batch_ns")
     max_hits = data.draw(st.integers(1, 12), label="max_hits")
     t0 = data.draw(st.integers(0, 10**6), label="t0")
-    hits = np.sort(np.array(data.draw(st.lists(st.integers(t0, t0 + 20 * b), max_size=150)),
-                            dtype=np.int64))
+    hits = np.sort(
+        np.array(data.draw(st.lists(st.integers(t0, t0 + 20 * b), max_size=150)), dtype=np.int64)
+    )
     marks = sorted(data.draw(st.lists(st.integers(t0, t0 + 25 * b), max_size=8)))
     cut_at = data.draw(st.integers(t0, t0 + 25 * b), label="cut")
     c = Cutter(b, max_hits)
@@ -275,7 +297,10 @@ def test_upload_span_covers_first_and_last_hit() -> None:
     ],
 )
 def test_cli_bad_values_exit_2(
-    argv: list[str], named: str, tmp_path: Path, capsys: pytest.CaptureFixture[str],
+    argv: list[str],
+    named: str,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     monkeypatch.setattr("tocsin.live.logs.setup", lambda level="info": None)
@@ -295,8 +320,17 @@ def test_cli_refuses_an_upload_spanning_years(
     monkeypatch.setattr("tocsin.live.logs.setup", lambda level="info": None)
     f = tmp_path / "hits.txt"
     f.write_text("1400000000000000000\n1500000000000000000\n")  # 3.2 years apart
-    argv = ["agent", "--site", SITE, "--broker", "mqtt://127.0.0.1:1", "--spool",
-            str(tmp_path / "s"), "--source", f"file:{f}"]
+    argv = [
+        "agent",
+        "--site",
+        SITE,
+        "--broker",
+        "mqtt://127.0.0.1:1",
+        "--spool",
+        str(tmp_path / "s"),
+        "--source",
+        f"file:{f}",
+    ]
     assert exit_code(argv) == 2
     assert "spans 100000001 batches" in capsys.readouterr().err
 
@@ -315,8 +349,9 @@ def test_upload_publishes_the_file_exactly(
     hits[-1] = 1400000007 * NS_PER_S  # the last hit exactly on a batch boundary
     hits.sort()
     lines = ["# fictional site alder-fen-1"]
-    lines += [gps_ns_to_utc_iso(int(v)) if k % 100 == 0 else str(int(v))
-              for k, v in enumerate(hits)]
+    lines += [
+        gps_ns_to_utc_iso(int(v)) if k % 100 == 0 else str(int(v)) for k, v in enumerate(hits)
+    ]
     lines.insert(700, "garbage line")
     f = tmp_path / "hits.txt"
     f.write_text("\n".join(lines[::-1]) + "\n")  # in any order
@@ -326,8 +361,10 @@ def test_upload_publishes_the_file_exactly(
         col = Collector(mosquitto.port, "test-upload-sub")
         await col.register()
         task = asyncio.create_task(col.run())
-        agent = Agent(settings_for(mosquitto, spool, batch_s=1.0, max_batch_hits=150),
-                      open_source(f"file:{f}"))
+        agent = Agent(
+            settings_for(mosquitto, spool, batch_s=1.0, max_batch_hits=150),
+            open_source(f"file:{f}"),
+        )
         async with agent:
             await asyncio.wait_for(agent.wait(), 30)
         n = agent.stats.batches_spooled
@@ -413,8 +450,11 @@ def test_broker_outage_loses_no_batch(
             await until(lambda: agent.spool.pending == 0, 15, "the spool to drain")
             await asyncio.sleep(0.5)  # a few more batches after the outage
         n = agent.stats.batches_spooled
-        await until(lambda: len(first_arrivals(col.batches(small_registry))) >= n, 15,
-                    f"all {n} batches at the subscriber")
+        await until(
+            lambda: len(first_arrivals(col.batches(small_registry))) >= n,
+            15,
+            f"all {n} batches at the subscriber",
+        )
         task.cancel()
         with contextlib.suppress(asyncio.CancelledError):
             await task
@@ -430,27 +470,36 @@ def test_broker_outage_loses_no_batch(
 
 @pytest.mark.broker
 def test_full_spool_becomes_dead_time(
-    mosquitto: Mosquitto, small_registry: SiteRegistry, tmp_path: Path,
+    mosquitto: Mosquitto,
+    small_registry: SiteRegistry,
+    tmp_path: Path,
     caplog: pytest.LogCaptureFixture,
 ) -> None:
     async def scenario() -> tuple[Collector, Agent]:
         col = Collector(mosquitto.port, "test-full-sub")
         await col.register()
         await asyncio.to_thread(mosquitto.stop)
-        agent = Agent(settings_for(mosquitto, tmp_path / "spool", batch_s=0.05,
-                                   spool_max_bytes=8192), open_source("sim:100"))
+        agent = Agent(
+            settings_for(mosquitto, tmp_path / "spool", batch_s=0.05, spool_max_bytes=8192),
+            open_source("sim:100"),
+        )
         async with agent:
             await until(lambda: agent.stats.batches_refused >= 10, 20, "the spool to overflow")
             await asyncio.to_thread(mosquitto.start)
             task = asyncio.create_task(col.run())
-            await until(lambda: agent.spool.pending == 0 and agent.stats.published > 20, 15,
-                        "the spool to drain")
+            await until(
+                lambda: agent.spool.pending == 0 and agent.stats.published > 20,
+                15,
+                "the spool to drain",
+            )
             after = agent.stats.batches_spooled
-            await until(lambda: agent.stats.batches_spooled >= after + 3, 15,
-                        "batches accepted again")
+            await until(
+                lambda: agent.stats.batches_spooled >= after + 3, 15, "batches accepted again"
+            )
         n = agent.stats.batches_spooled
-        await until(lambda: len(first_arrivals(col.batches(small_registry))) >= n, 15,
-                    f"all {n} batches")
+        await until(
+            lambda: len(first_arrivals(col.batches(small_registry))) >= n, 15, f"all {n} batches"
+        )
         task.cancel()
         with contextlib.suppress(asyncio.CancelledError):
             await task
@@ -495,8 +544,11 @@ def test_sigkilled_agent_restarts_with_its_spool(
             *agent_cmd(mosquitto, spool, "--source", "sim:50"), cwd=ROOT
         )
         try:
-            await until(lambda: len(first_arrivals(col.batches(small_registry))) > len(left) + 4,
-                        30, "the spooled batches and new ones")
+            await until(
+                lambda: len(first_arrivals(col.batches(small_registry))) > len(left) + 4,
+                30,
+                "the spooled batches and new ones",
+            )
         finally:
             second.send_signal(signal.SIGTERM)  # a clean stop: exit 0, status offline
             code = await asyncio.wait_for(second.wait(), 30)
@@ -517,7 +569,7 @@ def test_sigkilled_agent_restarts_with_its_spool(
             seq = orjson.loads(p)["seq"]
             assert by_seq.setdefault(seq, p) == p
     assert len(batches) > len(left)  # the restarted agent added batches after them ...
-    old, new = batches[: len(left)], batches[len(left):]
+    old, new = batches[: len(left)], batches[len(left) :]
     assert gaps(old) == [0] * (len(old) - 1)
     assert new[0].live_start > old[-1].live_end  # ... after an explicit gap (it was dead)
     assert gaps(new) == [0] * (len(new) - 1)
@@ -534,8 +586,16 @@ def test_last_will_says_offline_when_the_agent_is_killed(
         col = Collector(mosquitto.port, "test-will-sub", STATUS)
         task = asyncio.create_task(col.run())
         proc = await asyncio.create_subprocess_exec(
-            *agent_cmd(mosquitto, tmp_path / "spool", "--source", "sim:10",
-                       "--keepalive-s", str(keepalive_s)), cwd=ROOT)
+            *agent_cmd(
+                mosquitto,
+                tmp_path / "spool",
+                "--source",
+                "sim:10",
+                "--keepalive-s",
+                str(keepalive_s),
+            ),
+            cwd=ROOT,
+        )
         try:
             await until(lambda: "online" in col.states(), 30, "online status")
         finally:
@@ -600,8 +660,9 @@ def test_fifo_source_in_real_time(
             await asyncio.to_thread(writer, 10, 0.0, [])
             await asyncio.sleep(0.3)
         n = agent.stats.batches_spooled
-        await until(lambda: len(first_arrivals(col.batches(small_registry))) >= n, 10,
-                    f"all {n} batches")
+        await until(
+            lambda: len(first_arrivals(col.batches(small_registry))) >= n, 10, f"all {n} batches"
+        )
         task.cancel()
         with contextlib.suppress(asyncio.CancelledError):
             await task

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import signal
 from pathlib import Path
@@ -39,12 +40,14 @@ def _key(c: dict[str, object]) -> tuple[object, ...]:
     return (c["id"], c["revision"], c["far_per_year"], tuple(c["sites"]))  # type: ignore[arg-type]
 
 
-def test_live_equals_replay_and_sigkill_loses_nothing(mosquitto: Mosquitto, tmp_path: Path) -> None:
+def test_live_equals_replay_and_sigkill_loses_nothing(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
     lines = demo_lines()
     all_keys = {(json.loads(x)["site"], json.loads(x)["seq"]) for x in lines}
     cfg = write_config(tmp_path, mosquitto)
     data = tmp_path / "data"
-    svc = ServiceProcess(cfg)
+    svc = stack.enter_context(ServiceProcess(cfg))
     svc.start()
     svc.wait_connected()
     third = len(lines) // 3
@@ -68,12 +71,14 @@ def test_live_equals_replay_and_sigkill_loses_nothing(mosquitto: Mosquitto, tmp_
     assert any(c["statistic"] == "front" and c["multiplicity"] == 6 for c in live)
 
 
-def test_broker_restart_mid_stream_loses_nothing(mosquitto: Mosquitto, tmp_path: Path) -> None:
+def test_broker_restart_mid_stream_loses_nothing(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
     lines = demo_lines()[:4000]
     all_keys = {(json.loads(x)["site"], json.loads(x)["seq"]) for x in lines}
     cfg = write_config(tmp_path, mosquitto)
     data = tmp_path / "data"
-    svc = ServiceProcess(cfg)
+    svc = stack.enter_context(ServiceProcess(cfg))
     svc.start()
     svc.wait_connected()
     half = len(lines) // 2

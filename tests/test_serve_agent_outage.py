@@ -3,6 +3,7 @@ nothing is lost, and the service counts the outage as that site's dead time."""
 
 from __future__ import annotations
 
+import contextlib
 import signal
 import subprocess
 import sys
@@ -28,10 +29,12 @@ OUTAGE_S = 30.0
 NS = 10**9
 
 
-def test_agent_outage_spool_drains_in_order(mosquitto: Mosquitto, tmp_path: Path) -> None:
+def test_agent_outage_spool_drains_in_order(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
     cfg = write_config(tmp_path, mosquitto)
     data = tmp_path / "data"
-    svc = ServiceProcess(cfg)
+    svc = stack.enter_context(ServiceProcess(cfg))
     svc.start()
     svc.wait_connected()
     proxy = CuttableProxy(mosquitto.port)

@@ -3,6 +3,7 @@ counted by reason in the metrics, and nothing valid is lost; the service keeps r
 
 from __future__ import annotations
 
+import contextlib
 import json
 import random
 import re
@@ -65,7 +66,9 @@ def _malformed(rng: random.Random, good: list[dict[str, object]]) -> tuple[str, 
     return "bad_json", topic, nested
 
 
-def test_a_thousand_bad_messages_mixed_with_good_ones(mosquitto: Mosquitto, tmp_path: Path) -> None:
+def test_a_thousand_bad_messages_mixed_with_good_ones(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
     rng = random.Random(20261202)
     good_lines = demo_lines()[:3000]
     good = [orjson.loads(x) for x in good_lines]
@@ -76,17 +79,14 @@ def test_a_thousand_bad_messages_mixed_with_good_ones(mosquitto: Mosquitto, tmp_
         stream.insert(rng.randrange(len(stream) + 1), (topic, payload))
     port = free_port()
     cfg = write_config(tmp_path, mosquitto, metrics_port=port, max_message_bytes=MAX_BYTES)
-    svc = ServiceProcess(cfg)
+    svc = stack.enter_context(ServiceProcess(cfg))
     svc.start()
     svc.wait_connected()
     publish_sync(mosquitto.port, stream)
     wait_journal(tmp_path / "data", len(good))
     metrics = scrape(port)  # the service is still up and answering
     assert svc.proc is not None and svc.proc.poll() is None
-    counted = {
-        m.group(1): float(m.group(2))
-        for m in re.finditer(REJECTED_METRIC, metrics)
-    }
+    counted = {m.group(1): float(m.group(2)) for m in re.finditer(REJECTED_METRIC, metrics)}
     expected = Counter(r for r, _, _ in bad)
     assert counted == {k: float(v) for k, v in expected.items()}, (counted, expected)
     assert svc.stop(signal.SIGTERM) == 0

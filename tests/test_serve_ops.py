@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import re
 import signal
@@ -37,11 +38,13 @@ def _events(log: Path, name: str) -> list[dict[str, object]]:
     return out
 
 
-def test_metrics_and_warm_restart(mosquitto: Mosquitto, tmp_path: Path) -> None:
+def test_metrics_and_warm_restart(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
     lines = demo_lines()[:9000]  # about four minutes of the 40-site demo network
     port = free_port()
     cfg = write_config(tmp_path, mosquitto, metrics_port=port)
-    svc = ServiceProcess(cfg)
+    svc = stack.enter_context(ServiceProcess(cfg))
     svc.start()
     svc.wait_connected()
     publish_sync(mosquitto.port, lines)

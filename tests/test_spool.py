@@ -165,8 +165,9 @@ def test_corrupt_record_ends_its_segment_only(tmp_path: Path) -> None:
 
 @settings(max_examples=40, deadline=None)
 @given(cut=st.integers(min_value=0, max_value=12 * (HEADER_BYTES + 100)))
-def test_any_truncation_keeps_every_complete_record(tmp_path_factory: pytest.TempPathFactory,
-                                                    cut: int) -> None:
+def test_any_truncation_keeps_every_complete_record(
+    tmp_path_factory: pytest.TempPathFactory, cut: int
+) -> None:
     d = tmp_path_factory.mktemp("spool")
     sp = Spool(d, site=SITE, max_bytes=100_000)
     fill(sp, 12)
