@@ -52,11 +52,10 @@ class Journal:
         if self._fh is not None:
             self._fh.close()
         path = self.directory / name
+        if path.exists():
+            _cut_torn_line(path)
         fh = open(path, "ab")  # noqa: SIM115 - held open for the journal's life
         self._size = fh.tell()
-        if self._size and not _ends_with_newline(path):
-            fh.write(b"\n")  # a torn last line from a crash: terminate it (reader skips it)
-            self._size += 1
         self._fh, self._name = fh, name
 
     def append(self, line: bytes, recv_ns: int) -> Position:
@@ -94,13 +93,21 @@ def segments(directory: Path) -> list[Path]:
     return sorted(directory.glob(f"{PREFIX}*{SUFFIX}"))
 
 
-def read_from(directory: Path, pos: Position | None) -> Iterator[bytes]:
+def read_from(
+    directory: Path, pos: Position | None, *, since_ns: int | None = None
+) -> Iterator[bytes]:
     """Journal lines after ``pos`` (all of them for None), oldest first.
 
+    ``since_ns`` (used without a position) skips whole segments that ended before
+    that arrival time (GPS ns): a segment ends where the next one starts.
     A torn line (no newline: the process died mid-write) is skipped.
     """
-    for seg in segments(directory):
+    segs = segments(directory)
+    for k, seg in enumerate(segs):
         if pos is not None and seg.name < pos.segment:
+            continue
+        ended = k + 1 < len(segs) and since_ns is not None and _first_recv(segs[k + 1]) <= since_ns
+        if pos is None and ended:
             continue
         with open(seg, "rb") as fh:
             if pos is not None and seg.name == pos.segment:
@@ -110,7 +117,18 @@ def read_from(directory: Path, pos: Position | None) -> Iterator[bytes]:
                     yield line.rstrip(b"\n")
 
 
-def _ends_with_newline(path: Path) -> bool:
-    with open(path, "rb") as fh:
-        fh.seek(-1, os.SEEK_END)
-        return fh.read(1) == b"\n"
+def _cut_torn_line(path: Path) -> None:
+    """Drop a last line without its newline: the process died while writing it, before
+    the fsync, so its message was never acknowledged and the broker sends it again."""
+    data = path.read_bytes()
+    if data and not data.endswith(b"\n"):
+        keep = data.rfind(b"\n") + 1
+        with open(path, "r+b") as fh:
+            fh.truncate(keep)
+            fh.flush()
+            os.fsync(fh.fileno())
+
+
+def _first_recv(seg: Path) -> int:
+    """The arrival time (GPS ns) in a segment's name."""
+    return int(seg.name[len(PREFIX) : -len(SUFFIX)])

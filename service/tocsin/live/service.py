@@ -65,6 +65,8 @@ TICK_EVERY_S = 0.25
 IDLE_TICK_AFTER_S = 10.0
 """With no message for this long (s), ticks advance the watermark even when behind."""
 CHECKPOINT_EVERY_S = 300.0
+REBUILD_S = 7200.0
+"""Without a checkpoint, this much recent journal (s) is replayed at start."""
 MAX_FUTURE_S = 60.0
 """A batch starting this far (s) after the service's clock is refused: a site clock is wrong."""
 QUEUE_MAX = 20_000
@@ -105,7 +107,10 @@ class Service:
         ck = checkpoint.load(self.ckpt_path, self.key)
         pipe = ck.pipeline if ck is not None else Pipeline(self.registry, self.cfg.engine)
         n = 0
-        for line in read_from(self.journal.directory, ck.position if ck else None):
+        # Without a checkpoint, the last two background stretches rebuild every rate
+        # estimate; older journal (months of it) is not needed.
+        since = None if ck is not None else self.clock() - round(REBUILD_S * NS_PER_S)
+        for line in read_from(self.journal.directory, ck.position if ck else None, since_ns=since):
             item = decode_line(line, self.registry)
             if isinstance(item, HitBatch) and item.recv_ns is not None:
                 self._last_recv = max(self._last_recv, item.recv_ns)
