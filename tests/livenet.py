@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import gzip
 import os
 import signal
@@ -96,6 +97,14 @@ class ServiceProcess:
         code = self.proc.wait(timeout=timeout_s)
         self.proc = None
         return code
+
+
+def running_service(stack: contextlib.ExitStack, config: Path) -> ServiceProcess:
+    """A started, connected `tocsin serve`, killed at the end of the test whatever happens."""
+    svc = stack.enter_context(ServiceProcess(config))
+    svc.start()
+    svc.wait_connected()
+    return svc
 
 
 def journal_lines(data: Path) -> list[dict[str, object]]:

@@ -11,10 +11,10 @@ import pytest
 
 from tests.livenet import (
     SITES,
-    ServiceProcess,
     demo_lines,
     journal_lines,
     publish_sync,
+    running_service,
     wait_journal,
     write_config,
 )
@@ -47,9 +47,7 @@ def test_live_equals_replay_and_sigkill_loses_nothing(
     all_keys = {(json.loads(x)["site"], json.loads(x)["seq"]) for x in lines}
     cfg = write_config(tmp_path, mosquitto)
     data = tmp_path / "data"
-    svc = stack.enter_context(ServiceProcess(cfg))
-    svc.start()
-    svc.wait_connected()
+    svc = running_service(stack, cfg)
     third = len(lines) // 3
     publish_sync(mosquitto.port, lines[:third])
     wait_journal(data, third // 2)
@@ -78,9 +76,7 @@ def test_broker_restart_mid_stream_loses_nothing(
     all_keys = {(json.loads(x)["site"], json.loads(x)["seq"]) for x in lines}
     cfg = write_config(tmp_path, mosquitto)
     data = tmp_path / "data"
-    svc = stack.enter_context(ServiceProcess(cfg))
-    svc.start()
-    svc.wait_connected()
+    svc = running_service(stack, cfg)
     half = len(lines) // 2
     publish_sync(mosquitto.port, lines[:half])
     mosquitto.restart()  # clean stop: the broker saves queued messages

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.livenet import SITES, ServiceProcess, journal_lines, write_config
+from tests.livenet import SITES, journal_lines, running_service, write_config
 from tests.mosquitto import Mosquitto
 from tests.tcpproxy import CuttableProxy
 from tocsin.gpstime import gps_now_ns
@@ -34,9 +34,7 @@ def test_agent_outage_spool_drains_in_order(
 ) -> None:
     cfg = write_config(tmp_path, mosquitto)
     data = tmp_path / "data"
-    svc = stack.enter_context(ServiceProcess(cfg))
-    svc.start()
-    svc.wait_connected()
+    svc = running_service(stack, cfg)
     proxy = CuttableProxy(mosquitto.port)
     spool = tmp_path / "spool"
     log = open(tmp_path / "agent.log", "wb")  # noqa: SIM115 - closed below

@@ -15,10 +15,10 @@ import orjson
 import pytest
 
 from tests.livenet import (
-    ServiceProcess,
     demo_lines,
     journal_lines,
     publish_sync,
+    running_service,
     scrape,
     wait_journal,
     write_config,
@@ -79,9 +79,7 @@ def test_a_thousand_bad_messages_mixed_with_good_ones(
         stream.insert(rng.randrange(len(stream) + 1), (topic, payload))
     port = free_port()
     cfg = write_config(tmp_path, mosquitto, metrics_port=port, max_message_bytes=MAX_BYTES)
-    svc = stack.enter_context(ServiceProcess(cfg))
-    svc.start()
-    svc.wait_connected()
+    svc = running_service(stack, cfg)
     publish_sync(mosquitto.port, stream)
     wait_journal(tmp_path / "data", len(good))
     metrics = scrape(port)  # the service is still up and answering

@@ -11,9 +11,9 @@ from pathlib import Path
 import pytest
 
 from tests.livenet import (
-    ServiceProcess,
     demo_lines,
     publish_sync,
+    running_service,
     scrape,
     wait_journal,
     write_config,
@@ -44,9 +44,7 @@ def test_metrics_and_warm_restart(
     lines = demo_lines()[:9000]  # about four minutes of the 40-site demo network
     port = free_port()
     cfg = write_config(tmp_path, mosquitto, metrics_port=port)
-    svc = stack.enter_context(ServiceProcess(cfg))
-    svc.start()
-    svc.wait_connected()
+    svc = running_service(stack, cfg)
     publish_sync(mosquitto.port, lines)
     wait_journal(tmp_path / "data", len(lines))
     import time
