@@ -230,7 +230,11 @@ class CoincidenceTrigger:
             return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
         # Restrict the stream to sites that can count at this scale.
         counts_as_nb = st.q.sum(axis=0) > 0
-        sub = np.flatnonzero(counts_as_nb[site])
+        # Only the stretch these seeds' slots can reach: a previous hit before it is
+        # before every slot start, so "no previous hit" decides the same.
+        i_lo = int(np.searchsorted(t, int(t[seed_pos[0]]) - self.geom.back_ns, side="left"))
+        i_hi = int(np.searchsorted(t, int(t[seed_pos[-1]]) + self.geom.ahead_ns[k], side="right"))
+        sub = i_lo + np.flatnonzero(counts_as_nb[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
         pr = window_pairs(
             t_sub, t[seed_pos], back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k]

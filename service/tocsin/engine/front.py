@@ -129,7 +129,9 @@ class FrontSearch:
         if seed_pos.size == 0 or use.sum() < 4 or n_f == 0:
             return none
         wide = n_f - 1
-        sub = np.flatnonzero(use[site])
+        i_lo = int(np.searchsorted(t, int(t[seed_pos[0]]) - self.back_ns, side="left"))
+        i_hi = int(np.searchsorted(t, int(t[seed_pos[-1]]) + self.ahead_ns[-1], side="right"))
+        sub = i_lo + np.flatnonzero(use[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
         t_seed = t[seed_pos]
         s_seed_all = site[seed_pos]

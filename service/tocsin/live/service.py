@@ -41,6 +41,7 @@ import aiomqtt
 import numpy as np
 import orjson
 
+from tocsin.engine.sky import ecef_unit_to_radec
 from tocsin.errors import BatchRejected
 from tocsin.gpstime import gps_now_ns
 from tocsin.io import checkpoint
@@ -101,6 +102,9 @@ class Service:
         self.listeners: list[Callable[[Candidate], None]] = []
         """Called with every candidate written (alert emitters, the demo's display)."""
         self.pipeline = self._restore()
+        # astropy loads its Earth-orientation tables on the first sky transform (~0.5 s):
+        # do it now, not when the first candidate's direction is fitted
+        ecef_unit_to_radec(np.array([0.0, 0.0, 1.0]), self.clock())
 
     # -- start and stop ------------------------------------------------------
     def _restore(self) -> Pipeline:
