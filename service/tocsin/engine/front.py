@@ -99,7 +99,7 @@ class FrontSearch:
         f = np.where(use, np.clip(live_frac, 0.0, 1.0), 0.0)
         total = 0.0
         for k in range(self.scales_ns.size):
-            width = self.hi[k] - self.lo[None, :, :][0]
+            width = self.hi[k] - self.lo
             q = f[None, :] * -np.expm1(-lam[None, :] * width)
             q = np.where(use[None, :] & ~np.eye(self.n_sites, dtype=bool), q, 0.0)[use]
             p3 = poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
