@@ -1,0 +1,258 @@
+"""Alert policy: which candidates become alerts, updates and retractions, and the rate limit.
+
+Pure and synchronous (the service, replay and the ``retract`` command share it):
+
+* A candidate whose false alarm rate is at most ``internal_far_per_year`` becomes an
+  ``internal`` alert (our own sinks: the MQTT alert topic, the packet directory); at
+  most ``public_far_per_year`` a ``public`` one (also every transport subscriber).
+* A later revision of an alerted candidate (the merger only revises to a lower false
+  alarm rate: more sites arrived, or a sharper scale) becomes an ``update`` packet with
+  IVORN ``#<id>-u<revision>`` that cites the first alert with ``supersedes``.
+* IVORNs derive from the candidate id (a function of the data), so replay and live give
+  the same IVORN for the same candidate, and a restart never renumbers.
+* Rate limit: a token bucket per level (``burst`` tokens, refilled at ``max_per_hour``
+  per hour of *event* time, so replay decides exactly as live did). An alert that finds
+  the bucket empty is archived as ``held``: recorded, never sent. Retractions are never
+  held.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import orjson
+
+from tocsin.alerts.archive import AlertRow, Archive
+from tocsin.alerts.packet import (
+    AlertKind,
+    AlertMeta,
+    Level,
+    build_alert,
+    build_retraction,
+    event_time,
+    local_id,
+)
+from tocsin.alerts.skymap import write_skymap
+from tocsin.errors import TocsinError
+from tocsin.gpstime import gps_ns_to_utc_iso
+from tocsin.model.alert_config import AlertConfig
+from tocsin.model.candidate import Candidate
+from tocsin.types import NS_PER_S
+
+SINK_MQTT = "mqtt"
+SINK_DIR = "dir"
+VTP_PREFIX = "vtp:"
+BUCKET_MEMORY_S = 86_400
+"""On restart the buckets are rebuilt from the archived alerts of the last day."""
+
+
+class AlertError(TocsinError):
+    """A retraction or alert request that cannot be carried out (the message says why)."""
+
+
+@dataclass(slots=True)
+class TokenBucket:
+    """``capacity`` tokens, refilled at ``per_hour`` per hour of event time (GPS ns)."""
+
+    capacity: float
+    per_hour: float
+    tokens: float = field(init=False)
+    t_ns: int | None = None
+
+    def __post_init__(self) -> None:
+        self.tokens = self.capacity
+
+    def take(self, t_ns: int) -> bool:
+        """Refill up to ``t_ns`` (event times may arrive slightly out of order) and take one."""
+        if self.t_ns is not None and t_ns > self.t_ns:
+            gained = (t_ns - self.t_ns) / NS_PER_S / 3600.0 * self.per_hour
+            self.tokens = min(self.capacity, self.tokens + gained)
+        if self.t_ns is None or t_ns > self.t_ns:
+            self.t_ns = t_ns
+        if self.tokens >= 1.0:
+            self.tokens -= 1.0
+            return True
+        return False
+
+
+def _utc_now() -> dt.datetime:
+    return dt.datetime.now(dt.UTC)
+
+
+def _iso(t: dt.datetime) -> str:
+    return t.astimezone(dt.UTC).isoformat(timespec="microseconds")
+
+
+class AlertDesk:
+    """Turns candidates into archived alerts; knows which sinks each alert must reach."""
+
+    def __init__(
+        self,
+        cfg: AlertConfig,
+        archive: Archive,
+        *,
+        packet_dir: Path,
+        mqtt: bool,
+        subscribers: list[str] | None = None,
+    ) -> None:
+        self.cfg = cfg
+        self.archive = archive
+        self.packet_dir = packet_dir
+        self.mqtt = mqtt
+        self.subscribers = list(subscribers or [])
+        self.now = _utc_now
+        self.buckets: dict[str, TokenBucket] = {
+            lv: TokenBucket(float(cfg.burst), cfg.max_per_hour) for lv in ("internal", "public")
+        }
+        self.n_held = 0
+        self._rebuild_buckets()
+
+    def _rebuild_buckets(self) -> None:
+        rows = self.archive.latest(limit=1)
+        if not rows or rows[0].event_gps_ns is None:
+            return
+        since = rows[0].event_gps_ns - BUCKET_MEMORY_S * NS_PER_S
+        for t, level in self.archive.recent_sent(since):
+            self.buckets["internal"].take(t)
+            if level == "public":
+                self.buckets["public"].take(t)
+
+    # -- sinks -----------------------------------------------------------------
+    def sinks_for(self, level: str) -> list[str]:
+        out = [SINK_DIR]
+        if self.mqtt:
+            out.append(SINK_MQTT)
+        if level == "public":
+            out += [VTP_PREFIX + s for s in self.subscribers]
+        return out
+
+    # -- candidates ------------------------------------------------------------
+    def level_of(self, far_per_year: float) -> Level | None:
+        if far_per_year <= self.cfg.public_far_per_year:
+            return "public"
+        if far_per_year <= self.cfg.internal_far_per_year:
+            return "internal"
+        return None
+
+    def consider(self, cand: Candidate) -> AlertRow | None:
+        """Archive ``cand``; return the new alert row if it became (or updated) an alert."""
+        obj = cand.to_json_obj()
+        self.archive.add_candidate(obj, orjson.dumps(obj))
+        level = self.level_of(cand.far_per_year)
+        if level is None:
+            return None
+        earlier = [a for a in self.archive.alerts_for(cand.id) if a.kind != "retraction"]
+        if any(a.kind == "retraction" for a in self.archive.alerts_for(cand.id)):
+            return None  # withdrawn by an operator: later revisions stay quiet
+        kind: AlertKind = "new"
+        cites = None
+        note = ""
+        if earlier:
+            if any(a.revision >= cand.revision for a in earlier):
+                return None
+            kind = "update"
+            first = earlier[0]
+            cites = first.ivorn
+            if first.level == "public":
+                level = "public"
+            note = (
+                f"Candidate revised to revision {cand.revision}: {len(cand.sites)} sites, "
+                f"false alarm rate {cand.far_per_year:.3g} per year "
+                f"(was {first.far_per_year:.3g})."
+            )
+        ivorn = f"{self.cfg.stream_ivorn}#{local_id(cand.id, kind, cand.revision)}"
+        t_ns, _, _ = event_time(cand)
+        held = not self._take(level, int(t_ns))
+        created = self.now()
+        skymap_uri, skymap_path = self._skymap(cand, ivorn)
+        meta = AlertMeta(ivorn, kind, level, created, cites, note, skymap_uri)
+        xml = build_alert(cand, meta, self.cfg)
+        row = AlertRow(
+            seq=0,
+            ivorn=ivorn,
+            candidate_id=cand.id,
+            revision=cand.revision,
+            kind=kind,
+            level=level,
+            status="held" if held else "queued",
+            cites=cites,
+            note=note,
+            created_utc=_iso(created),
+            event_gps_ns=int(t_ns),
+            far_per_year=float(cand.far_per_year),
+            skymap=skymap_path,
+            xml=xml,
+        )
+        sinks = [] if held else self.sinks_for(level)
+        if not self.archive.insert_alert(row, sinks, _iso(created)):
+            return None
+        if held:
+            self.n_held += 1
+        return self.archive.get(ivorn)
+
+    def _take(self, level: str, t_ns: int) -> bool:
+        ok = self.buckets["internal"].take(t_ns)
+        if ok and level == "public":
+            ok = self.buckets["public"].take(t_ns)
+        return ok
+
+    def _skymap(self, cand: Candidate, ivorn: str) -> tuple[str | None, str | None]:
+        if not self.cfg.skymaps or cand.ra_deg is None or cand.dec_deg is None:
+            return None, None
+        if cand.err_deg is None:
+            return None, None
+        name = ivorn.split("#", 1)[1] + ".multiorder.fits"
+        path = write_skymap(
+            self.packet_dir / "maps" / name,
+            cand.ra_deg,
+            cand.dec_deg,
+            cand.err_deg,
+            object_id=ivorn,
+            date_obs=gps_ns_to_utc_iso(cand.time_gps_ns),
+        )
+        base = self.cfg.skymap_url_base
+        uri = f"{base.rstrip('/')}/{name}" if base else path.resolve().as_uri()
+        return uri, str(path)
+
+    # -- retraction ------------------------------------------------------------
+    def retract(self, ivorn: str, reason: str) -> AlertRow:
+        """Archive a retraction of ``ivorn`` (our own alert) for every sink the original reached."""
+        if not reason.strip():
+            raise AlertError("a retraction needs --reason TEXT saying why")
+        orig = self.archive.get(ivorn)
+        if orig is None:
+            raise AlertError(f"no archived alert has IVORN {ivorn!r}")
+        if orig.kind == "retraction":
+            raise AlertError(f"{ivorn!r} is itself a retraction")
+        family = self.archive.alerts_for(orig.candidate_id)
+        if any(a.kind == "retraction" for a in family):
+            raise AlertError(f"candidate {orig.candidate_id!r} of {ivorn!r} is already retracted")
+        first = family[0]
+        created = self.now()
+        new_ivorn = f"{self.cfg.stream_ivorn}#{local_id(orig.candidate_id, 'retraction')}"
+        sent_levels = {a.level for a in family if a.status == "queued"}
+        level: Level = "public" if "public" in sent_levels else "internal"
+        meta = AlertMeta(new_ivorn, "retraction", level, created, first.ivorn, reason)
+        xml = build_retraction(first.ivorn, orig.candidate_id, meta, self.cfg)
+        row = AlertRow(
+            seq=0,
+            ivorn=new_ivorn,
+            candidate_id=orig.candidate_id,
+            revision=orig.revision,
+            kind="retraction",
+            level=level,
+            status="queued",
+            cites=first.ivorn,
+            note=reason,
+            created_utc=_iso(created),
+            event_gps_ns=orig.event_gps_ns,
+            far_per_year=orig.far_per_year,
+            skymap=None,
+            xml=xml,
+        )
+        self.archive.insert_alert(row, self.sinks_for(level), _iso(created))
+        got = self.archive.get(new_ivorn)
+        assert got is not None
+        return got

@@ -1,0 +1,51 @@
+"""Candidates and configs for alert tests (fictional authority ``tocsin.example``)."""
+
+from __future__ import annotations
+
+from tocsin.model.alert_config import AlertConfig
+from tocsin.model.candidate import Candidate
+from tocsin.types import GpsNs
+
+T0 = GpsNs(1_457_481_798_000_000_003)  # 2026-03-14T00:03:00.000000003 UTC
+
+
+def front_candidate(
+    *, far: float = 0.05, revision: int = 1, sites: int = 6, t_ns: int = T0, cid: str = ""
+) -> Candidate:
+    names = [f"site-{k}" for k in range(sites)]
+    c = Candidate(
+        trigger="coincidence",
+        statistic="front",
+        time_gps_ns=GpsNs(t_ns - 19_573_786),
+        window_s=1e-6,
+        sites=names,
+        p_value=far * 1e-12,
+        far_per_year=far,
+        multiplicity=sites,
+        ra_deg=149.99987774621263,
+        dec_deg=35.000071900310026,
+        err_deg=7.919361200686146e-05,
+        details={"front_t0_gps_ns": int(t_ns), "front_t0_sigma_ns": 16.8},
+        revision=revision,
+        id=cid,
+    )
+    return c
+
+
+def excess_candidate(*, far: float = 100.0, t_ns: int = T0) -> Candidate:
+    return Candidate(
+        trigger="excess",
+        statistic="network",
+        time_gps_ns=GpsNs(t_ns),
+        window_s=16.0,
+        sites=["site-0", "site-1"],
+        p_value=1e-9,
+        far_per_year=far,
+        multiplicity=2,
+        observed=260.0,
+        expected=180.5,
+    )
+
+
+def config(**kw: object) -> AlertConfig:
+    return AlertConfig.model_validate({"authority": "tocsin.example", "stream": "alerts", **kw})

@@ -1,0 +1,116 @@
+"""Alert policy and archive: thresholds, updates, retractions, the rate limit, restarts."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from tests.alertkit import T0, config, excess_candidate, front_candidate
+from tocsin.alerts.archive import Archive
+from tocsin.alerts.outbox import flush_directory
+from tocsin.alerts.packet import read_alert
+from tocsin.alerts.policy import AlertDesk, AlertError
+from tocsin.errors import ConfigError
+from tocsin.model.alert_config import AlertConfig
+from tocsin.types import NS_PER_S
+
+
+def _desk(
+    tmp: Path, cfg: AlertConfig | None = None, subs: tuple[str, ...] = ("obs-a",)
+) -> AlertDesk:
+    cfg = cfg or config()
+    arch = Archive(tmp / "alerts.sqlite", stream=cfg.stream_ivorn, role=cfg.role)
+    return AlertDesk(cfg, arch, packet_dir=tmp / "packets", mqtt=True, subscribers=list(subs))
+
+
+def test_thresholds_choose_level_and_sinks(tmp_path: Path) -> None:
+    desk = _desk(tmp_path)
+    assert desk.consider(excess_candidate(far=400.0)) is None  # above 1/day: no alert
+    internal = desk.consider(excess_candidate(far=100.0, t_ns=T0 + 10 * NS_PER_S))
+    public = desk.consider(front_candidate(far=0.5))
+    assert internal is not None and internal.level == "internal"
+    assert public is not None and public.level == "public"
+    sinks = {d.sink for d in desk.archive.deliveries(internal.ivorn)}
+    assert sinks == {"dir", "mqtt"}
+    sinks = {d.sink for d in desk.archive.deliveries(public.ivorn)}
+    assert sinks == {"dir", "mqtt", "vtp:obs-a"}
+    assert public.skymap is not None and Path(public.skymap).is_file()
+    assert read_alert(public.xml).ivorn == public.ivorn
+    assert flush_directory(desk.archive, tmp_path / "packets") == 2
+    assert flush_directory(desk.archive, tmp_path / "packets") == 0
+    assert (tmp_path / "packets" / f"{public.candidate_id}.xml").read_bytes() == public.xml
+
+
+def test_update_cites_first_and_restart_never_renumbers(tmp_path: Path) -> None:
+    desk = _desk(tmp_path)
+    first = desk.consider(front_candidate(far=0.5))
+    assert first is not None
+    cid = first.candidate_id
+    upd = desk.consider(front_candidate(far=0.01, revision=2, sites=7, cid=cid))
+    assert upd is not None and upd.kind == "update"
+    assert upd.ivorn == first.ivorn + "-u2"
+    assert read_alert(upd.xml).citations == [(first.ivorn, "supersedes")]
+    assert desk.consider(front_candidate(far=0.01, revision=2, sites=7, cid=cid)) is None
+    desk.archive.close()
+    again = _desk(tmp_path)  # restart: the same candidates come back from the journal
+    assert again.consider(front_candidate(far=0.5)) is None
+    assert again.consider(front_candidate(far=0.01, revision=2, sites=7, cid=cid)) is None
+    rows = again.archive.latest()
+    assert [r.ivorn for r in reversed(rows)] == [first.ivorn, upd.ivorn]
+    assert [r.seq for r in reversed(rows)] == [first.seq, upd.seq]
+
+
+def test_retraction(tmp_path: Path) -> None:
+    desk = _desk(tmp_path)
+    first = desk.consider(front_candidate(far=0.5))
+    assert first is not None
+    upd = desk.consider(front_candidate(far=0.01, revision=2, cid=first.candidate_id))
+    assert upd is not None
+    with pytest.raises(AlertError, match="needs --reason"):
+        desk.retract(upd.ivorn, "  ")
+    with pytest.raises(AlertError, match="no archived alert"):
+        desk.retract(first.ivorn + "-nope", "x")
+    r = desk.retract(upd.ivorn, "timing fault at two sites")
+    assert r.ivorn == first.ivorn + "-x" and r.level == "public"
+    assert read_alert(r.xml).citations == [(first.ivorn, "retraction")]
+    assert {d.sink for d in desk.archive.deliveries(r.ivorn)} == {"dir", "mqtt", "vtp:obs-a"}
+    with pytest.raises(AlertError, match="already retracted"):
+        desk.retract(first.ivorn, "again")
+    # later revisions of a retracted candidate stay quiet
+    assert desk.consider(front_candidate(far=0.001, revision=3, cid=first.candidate_id)) is None
+
+
+def test_rate_limit_holds_a_storm_and_refills_with_event_time(tmp_path: Path) -> None:
+    desk = _desk(tmp_path, config(burst=3, max_per_hour=6.0))
+    rows = [desk.consider(excess_candidate(far=100.0, t_ns=T0 + k * NS_PER_S)) for k in range(10)]
+    status = [r.status for r in rows if r is not None]
+    assert status == ["queued"] * 3 + ["held"] * 7
+    held = [r for r in rows if r is not None and r.status == "held"]
+    assert all(desk.archive.deliveries(r.ivorn) == [] for r in held)  # archived, never sent
+    # 6 per hour: ten minutes of event time later there is one token again
+    later = desk.consider(excess_candidate(far=100.0, t_ns=T0 + 700 * NS_PER_S))
+    assert later is not None and later.status == "queued"
+    desk.archive.close()
+    # a restart rebuilds the bucket from the archive: still empty right after
+    again = _desk(tmp_path, config(burst=3, max_per_hour=6.0))
+    r = again.consider(excess_candidate(far=100.0, t_ns=T0 + 701 * NS_PER_S))
+    assert r is not None and r.status == "held"
+
+
+def test_public_bucket_not_starved_by_internal_storm(tmp_path: Path) -> None:
+    desk = _desk(tmp_path, config(burst=2, max_per_hour=1.0))
+    for k in range(2):
+        desk.consider(excess_candidate(far=100.0, t_ns=T0 + k * NS_PER_S))
+    pub = desk.consider(front_candidate(far=0.1, t_ns=T0 + 5 * NS_PER_S))
+    # the internal bucket is empty: the storm limit applies to everything (documented)
+    assert pub is not None and pub.status == "held"
+
+
+def test_archive_refuses_to_mix_roles(tmp_path: Path) -> None:
+    cfg = config(role="test")
+    Archive(tmp_path / "a.sqlite", stream=cfg.stream_ivorn, role="test").close()
+    with pytest.raises(ConfigError, match="never mix"):
+        Archive(tmp_path / "a.sqlite", stream=cfg.stream_ivorn, role="observation")
+    with pytest.raises(ConfigError, match="holds stream"):
+        Archive(tmp_path / "a.sqlite", stream="ivo://other.example/x", role="test")
