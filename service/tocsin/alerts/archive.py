@@ -80,12 +80,13 @@ class Delivery:
 class Archive:
     """SQLite archive for one (stream, role). Not thread-safe; one per process and thread."""
 
-    def __init__(self, path: Path, *, stream: str, role: str) -> None:
+    def __init__(self, path: Path, *, stream: str, role: str, durable: bool = True) -> None:
+        """Open (or create) the archive. ``durable=False`` skips fsyncs (replay output)."""
         self.path = path
         path.parent.mkdir(parents=True, exist_ok=True)
         self.db = sqlite3.connect(path, isolation_level=None, timeout=30.0)
         self.db.execute("PRAGMA journal_mode=WAL")
-        self.db.execute("PRAGMA synchronous=FULL")
+        self.db.execute(f"PRAGMA synchronous={'FULL' if durable else 'OFF'}")
         self.db.execute("PRAGMA foreign_keys=ON")
         self.db.executescript(_SCHEMA)
         self._bind("schema", SCHEMA_VERSION)

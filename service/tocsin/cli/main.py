@@ -22,6 +22,8 @@ COMMANDS: dict[str, str] = {
     "serve": "tocsin.cli.serve",
     "demo": "tocsin.cli.demo",
     "agent": "tocsin.cli.agent",
+    "alerts": "tocsin.cli.alerts",
+    "retract": "tocsin.cli.retract",
 }
 
 

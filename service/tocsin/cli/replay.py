@@ -11,8 +11,12 @@ from typing import Any
 
 import orjson
 
+from tocsin.alerts.archive import Archive
+from tocsin.alerts.outbox import flush_directory
+from tocsin.alerts.policy import AlertDesk
 from tocsin.cli.progress import Progress
 from tocsin.io.recording import Rejected, decode_line, open_text
+from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import load_engine_config
 from tocsin.model.registry import SiteRegistry
@@ -31,13 +35,19 @@ def add_parser(sub: Any) -> None:
         description=(
             "Run the same trigger engine as the live service over a recording (one JSON hit "
             "batch per line, .gz allowed), as fast as it can. Writes DIR/candidates.jsonl, "
-            "DIR/rejected.jsonl (every unusable line with its reason) and DIR/summary.json, "
-            "and prints a summary table."
+            "DIR/rejected.jsonl (every unusable line with its reason), DIR/summary.json, and "
+            "the alerts the service would have sent: VOEvent packets in DIR/alerts/ and the "
+            "archive DIR/alerts.sqlite (same policy and IVORNs as the live service; the "
+            "config's [alerts] table, role 'test' by default). Prints a summary table."
         ),
     )
     p.add_argument("recording", type=Path, help="recording file (.jsonl or .jsonl.gz)")
     p.add_argument("--sites", type=Path, required=True, help="site registry (TOML)")
-    p.add_argument("--config", type=Path, help="Tocsin config (TOML); its [engine] table is used")
+    p.add_argument(
+        "--config",
+        type=Path,
+        help="Tocsin config (TOML); its [engine] and [alerts] tables are used",
+    )
     p.add_argument(
         "--candidate-far",
         type=float,
@@ -55,11 +65,18 @@ def run(args: argparse.Namespace) -> int:
         raise FileNotFoundError(f"recording {str(args.recording)!r} does not exist")
     registry = SiteRegistry.from_toml(args.sites)
     cfg = load_engine_config(args.config)
+    alert_cfg = load_alert_config(args.config)
     pipe = Pipeline(
         registry, cfg, candidate_far_per_year=args.candidate_far, release_every_s=REPLAY_BLOCK_S
     )
     out: Path = args.out
     out.mkdir(parents=True, exist_ok=True)
+    for stale in ("alerts.sqlite", "alerts.sqlite-wal", "alerts.sqlite-shm"):
+        (out / stale).unlink(missing_ok=True)
+    archive = Archive(
+        out / "alerts.sqlite", stream=alert_cfg.stream_ivorn, role=alert_cfg.role, durable=False
+    )
+    desk = AlertDesk(alert_cfg, archive, packet_dir=out / "alerts", mqtt=False)
     latest: dict[str, Candidate] = {}
     n_lines = 0
     t0 = time.perf_counter()
@@ -75,6 +92,8 @@ def run(args: argparse.Namespace) -> int:
             for c in cands:
                 cand_fh.write(c.to_json_line())
                 latest[c.id] = c
+                if desk.consider(c) is not None:
+                    flush_directory(archive, out / "alerts")
 
         for k, raw in enumerate(fh, start=1):
             line = raw.strip()
@@ -97,6 +116,10 @@ def run(args: argparse.Namespace) -> int:
     progress.done()
     wall = time.perf_counter() - t0
     summary = _summary(pipe, latest, n_lines, wall)
+    alerts = archive.latest(limit=1_000_000)
+    summary["alerts"] = dict(sorted(Counter(f"{a.kind}/{a.level}" for a in alerts).items()))
+    summary["alerts_held"] = sum(a.status == "held" for a in alerts)
+    archive.close()
     (out / "summary.json").write_bytes(orjson.dumps(summary, option=orjson.OPT_INDENT_2))
     print(_table(summary))
     return 0
@@ -165,6 +188,10 @@ def _table(s: dict[str, Any]) -> str:
                 f"FAR {b['far_per_year']:.3g}/yr, {len(b['sites'])} sites",
             )
         )
+    rows.append(
+        ("alerts", f"{sum(s['alerts'].values()):,} ({s['alerts_held']} held by rate limit)")
+    )
+    rows += [(f"  {k}", f"{v:,}") for k, v in s["alerts"].items()]
     rows.append(("speed", f"{s['hits_per_s'] or 0:,.0f} hits/s ({s['wall_s']:.1f} s)"))
     w = max(len(r[0]) for r in rows)
     return "\n".join(f"{a:<{w}}  {b}" for a, b in rows)

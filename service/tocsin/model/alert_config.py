@@ -31,7 +31,9 @@ import re
 from pathlib import Path
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from tocsin.model.config import read_toml, validation_error
 
 AUTHORITY_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._~-]{2,}$")
 """Authority part of an IVORN (IVOA Identifiers 2.0 §2, from memory; conservative subset)."""
@@ -127,3 +129,14 @@ class AlertConfig(BaseModel):
     def stream_ivorn(self) -> str:
         """``ivo://authority/stream`` — the part of every IVORN before ``#``."""
         return f"ivo://{self.authority}/{self.stream}"
+
+
+def load_alert_config(path: str | Path | None) -> AlertConfig:
+    """Read the ``[alerts]`` table of a TOML file (defaults, role ``test``, when absent)."""
+    if path is None:
+        return AlertConfig()
+    data = read_toml(path)
+    try:
+        return AlertConfig.model_validate(data.get("alerts", {}))
+    except ValidationError as exc:
+        raise validation_error(path, exc, "alerts.") from exc

@@ -24,6 +24,10 @@ Layout::
     [engine]                                # as in deploy/tocsin.toml
     ...
 
+    [alerts]                                # see tocsin.model.alert_config
+    role = "observation"
+    ...
+
 Environment variables override secrets and the broker address:
 ``TOCSIN_BROKER_URL``, ``TOCSIN_BROKER_USERNAME``, ``TOCSIN_BROKER_PASSWORD``.
 """
@@ -39,6 +43,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from tocsin.errors import ConfigError
 from tocsin.live.topics import DEFAULT_ROOT, check_root
+from tocsin.model.alert_config import AlertConfig
 from tocsin.model.config import EngineConfig, read_toml, validation_error
 
 ENV_URL = "TOCSIN_BROKER_URL"
@@ -105,6 +110,7 @@ class ServiceConfig(BaseModel):
     broker: BrokerConfig | None = None
     metrics: MetricsConfig = MetricsConfig()
     engine: EngineConfig = EngineConfig()
+    alerts: AlertConfig = AlertConfig()
 
 
 def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) -> ServiceConfig:
@@ -131,6 +137,10 @@ def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) 
         "registry": _rel(base, cfg.registry),
         "data_dir": _rel(base, cfg.data_dir),
     }
+    if cfg.alerts.directory is not None:
+        upd["alerts"] = cfg.alerts.model_copy(
+            update={"directory": _rel(base, cfg.alerts.directory)}
+        )
     if cfg.broker is not None:
         b = cfg.broker
         upd["broker"] = b.model_copy(
