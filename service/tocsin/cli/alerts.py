@@ -84,9 +84,9 @@ def run(args: argparse.Namespace) -> int:
                     f"{done}/{len(ds)}",
                 )
             )
-        widths = [max(len(row[i]) for row in table) for i in range(len(table[0]))]
-        for row in table:
-            print("  ".join(c.ljust(w) for c, w in zip(row, widths, strict=True)).rstrip())
+        widths = [max(len(t[i]) for t in table) for i in range(len(table[0]))]
+        for cells in table:
+            print("  ".join(c.ljust(w) for c, w in zip(cells, widths, strict=True)).rstrip())
         if not rows:
             print("(no alerts)")
         return 0
