@@ -55,6 +55,18 @@ class Metrics:
             "tocsin_journal_lines", "Batches written to the journal", registry=r
         )
         self.checkpoints = Counter("tocsin_checkpoints", "Checkpoints written", registry=r)
+        self.alerts = Counter(
+            "tocsin_alerts",
+            "Alerts archived, by kind (new/update/retraction), level and status (queued/held)",
+            ["kind", "level", "status"],
+            registry=r,
+        )
+        self.deliveries = Counter(
+            "tocsin_alert_deliveries",
+            "Alert delivery outcomes by sink (dir, mqtt, vtp)",
+            ["sink", "outcome"],
+            registry=r,
+        )
         self.connected = Gauge(
             "tocsin_broker_connected", "1 while connected to the broker", registry=r
         )

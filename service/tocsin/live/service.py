@@ -14,8 +14,10 @@ What happens to a message on ``{root}/site/<id>/hits``:
    only then is the MQTT message acknowledged (paho's manual acknowledgement:
    a crash before that makes the broker send it again, and the ordering stage
    drops the repeat by ``seq``);
-4. offered to the :class:`~tocsin.pipeline.Pipeline`; new candidates go to
-   ``candidates.jsonl`` (an id and revision is written once, ever).
+4. offered to the :class:`~tocsin.pipeline.Pipeline`; new candidates go first to
+   the alert policy (an alert is archived in ``alerts.sqlite`` before anything is
+   sent; :mod:`tocsin.live.alert_dispatch` delivers it), then to ``candidates.jsonl``
+   (an id and revision is written once, ever).
 
 Idle ticks advance the watermark by the wall clock once the service has caught
 up with real time. A checkpoint (pipeline + journal position) is written every
@@ -41,6 +43,8 @@ import aiomqtt
 import numpy as np
 import orjson
 
+from tocsin.alerts.archive import Archive
+from tocsin.alerts.policy import AlertDesk
 from tocsin.engine.sky import ecef_unit_to_radec
 from tocsin.errors import BatchRejected
 from tocsin.gpstime import gps_now_ns
@@ -48,6 +52,7 @@ from tocsin.io import checkpoint
 from tocsin.io.journal import Journal, read_from
 from tocsin.io.recording import decode_line
 from tocsin.live import topics
+from tocsin.live.alert_dispatch import AlertDispatcher
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
 from tocsin.model.batch import HitBatch, parse_batch
@@ -100,7 +105,17 @@ class Service:
         self._last_msg_wall = 0
         self._last_ckpt = time.monotonic()
         self.listeners: list[Callable[[Candidate], None]] = []
-        """Called with every candidate written (alert emitters, the demo's display)."""
+        """Called with every candidate written (the demo's display)."""
+        a = cfg.alerts
+        self.archive = Archive(data / "alerts.sqlite", stream=a.stream_ivorn, role=a.role)
+        self.packet_dir = a.directory or data / "alerts"
+        subscribers = [e.name for e in a.transport.allow] if a.transport is not None else []
+        self.desk = AlertDesk(
+            a, self.archive, packet_dir=self.packet_dir, mqtt=True, subscribers=subscribers
+        )
+        self.dispatcher = AlertDispatcher(
+            self.archive, self.packet_dir, topics.alerts_topic(self.root), self.metrics
+        )
         self.pipeline = self._restore()
         # astropy loads its Earth-orientation tables on the first sky transform (~0.5 s):
         # do it now, not when the first candidate's direction is fitted
@@ -145,6 +160,7 @@ class Service:
         self.metrics.checkpoints.inc()
 
     def close(self) -> None:
+        self.archive.close()
         self.journal.close()
         self._cand_fh.close()
         self._rej_fh.close()
@@ -258,6 +274,22 @@ class Service:
             k = (c.id, c.revision)
             if k in self._written:
                 continue
+            # archive the alert before the candidate line: a crash between the two
+            # writes the line again at restart, and the alert exists once (by IVORN)
+            alert = self.desk.consider(c)
+            if alert is not None:
+                self.metrics.alerts.labels(alert.kind, alert.level, alert.status).inc()
+                self.dispatcher.wake.set()
+                event(
+                    log,
+                    "alert",
+                    logging.WARNING if alert.status == "held" else logging.INFO,
+                    ivorn=alert.ivorn,
+                    kind=alert.kind,
+                    alert_level=alert.level,
+                    status=alert.status,
+                    far_per_year=alert.far_per_year,
+                )
             self._written.add(k)
             self._cand_fh.write(c.to_json_line())
             for listener in self.listeners:
@@ -282,6 +314,7 @@ class Service:
     async def run(self, stop: asyncio.Event) -> None:
         """Connect, consume and reconnect until ``stop`` is set; then checkpoint."""
         backoff = 0.5
+        deliver = asyncio.create_task(self.dispatcher.run(stop), name="alert-dispatch")
         try:
             while not stop.is_set():
                 client = self._client()
@@ -294,7 +327,12 @@ class Service:
                         backoff = 0.5
                         await client.subscribe(topics.all_hits_filter(self.root), qos=1)
                         await client.subscribe(topics.all_status_filter(self.root), qos=1)
-                        await self._consume(client, stop)
+                        self.dispatcher.client = client
+                        self.dispatcher.wake.set()
+                        try:
+                            await self._consume(client, stop)
+                        finally:
+                            self.dispatcher.client = None
                 except aiomqtt.MqttError as exc:
                     self.metrics.connected.set(0)
                     event(
@@ -309,6 +347,9 @@ class Service:
                     backoff = min(backoff * 2, 30.0) * random.uniform(0.8, 1.2)
         finally:
             self.metrics.connected.set(0)
+            stop.set()
+            with contextlib.suppress(asyncio.CancelledError):
+                await deliver
             self.save_checkpoint()
             event(log, "stopped", checkpoint=str(self.ckpt_path))
 
