@@ -137,6 +137,17 @@ class Orderer:
         w = now - self.lateness_ns
         return self._release_to(w - w % self.quantum_ns)
 
+    def data_end(self) -> GpsNs | None:
+        """The latest of the watermark and the end of any pending live interval (ns)."""
+        ends = [b.live_end for b in self._pending]
+        if self.watermark is not None:
+            ends.append(self.watermark)
+        return GpsNs(max(ends)) if ends else None
+
+    def release_through(self, w: GpsNs) -> Block | None:
+        """Advance the watermark to ``w`` (rounded down to the quantum) with no new data."""
+        return self._release_to(GpsNs(w - w % self.quantum_ns))
+
     def flush(self) -> Block | None:
         """Release everything pending (end of input)."""
         if not self._pending:

@@ -19,7 +19,7 @@ from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
 from tocsin.ordering import Orderer
-from tocsin.types import NS_PER_S
+from tocsin.types import NS_PER_S, GpsNs
 
 
 @dataclass(slots=True)
@@ -82,12 +82,43 @@ class Pipeline:
         return self._run(self.orderer.release())
 
     def tick(self, now_ns: int) -> list[Candidate]:
-        """Advance the watermark on an idle timer (live service)."""
-        return self._run(self.orderer.release(now_ns))
+        """Advance the watermark on an idle timer (live service).
+
+        A jump far past the data (input stopped, or a restart long after it) goes in
+        the steps :meth:`finish` takes — to the end of the data, then
+        :attr:`horizon_ns` further, then to ``now`` — so the windows that reach the
+        data close exactly as in a replay of the same journal.
+        """
+        out: list[Candidate] = []
+        end = self.orderer.data_end()
+        target = now_ns - self.orderer.lateness_ns
+        if end is not None and target > end + self.horizon_ns:
+            out += self._run(self.orderer.release_through(end))
+            out += self._run(self.orderer.release_through(GpsNs(end + self.horizon_ns)))
+        out += self._run(self.orderer.release(GpsNs(now_ns)))
+        return out
 
     def finish(self) -> list[Candidate]:
-        """End of input: release everything still pending."""
-        return self._run(self.orderer.flush())
+        """End of input: release everything still pending, then let time run on.
+
+        A live service whose input stops keeps ticking, so every window that
+        overlaps the end of the data still closes (with no live time after it).
+        Replay does the same by advancing the watermark a further
+        :attr:`horizon_ns`, past which no window reaches; so a replayed journal
+        gives the candidates the live service gave.
+        """
+        out = self._run(self.orderer.flush())
+        w = self.orderer.watermark
+        if w is not None:
+            out += self._run(self.orderer.release_through(GpsNs(w + self.horizon_ns)))
+        return out
+
+    @property
+    def horizon_ns(self) -> int:
+        """The longest excess window plus the longest coincidence scale plus two bins (ns)."""
+        c: EngineConfig = self.engine.cfg
+        longest = max(c.excess.scales_s) + max(c.coincidence.scales_s) + 2 * c.rate.bin_s
+        return round(longest * NS_PER_S)
 
     def _run(self, block: Block | None) -> list[Candidate]:
         if block is None:
