@@ -8,6 +8,7 @@ import contextlib
 import json
 import signal
 import sqlite3
+import threading
 import time
 from collections import Counter
 from pathlib import Path
@@ -16,16 +17,50 @@ import aiomqtt
 import pytest
 
 from tests.livenet import SITES, demo_lines, publish_sync, running_service, wait_journal
-from tests.mosquitto import Mosquitto
+from tests.mosquitto import Mosquitto, free_port
 from tocsin.alerts.packet import read_alert
 from tocsin.cli.main import main
+from tocsin.live.transport import TransportClient
 
 pytestmark = [pytest.mark.broker, pytest.mark.slow]
 
 WATCHER = "alert-watcher"
 
 
-def _config(tmp: Path, broker: Mosquitto) -> Path:
+class VtpWatcher(threading.Thread):
+    """A VOEvent transport subscriber in its own thread and event loop, reconnecting."""
+
+    def __init__(self, port: int) -> None:
+        super().__init__(daemon=True)
+        self.port = port
+        self.got: list[bytes] = []
+        self.duplicates = 0
+        self.connects = 0
+        self._halt = threading.Event()
+
+    def run(self) -> None:
+        asyncio.run(self._main())
+
+    async def _main(self) -> None:
+        async def on_packet(raw: bytes, voevent: object) -> None:
+            self.got.append(raw)
+
+        client = TransportClient(
+            "127.0.0.1", self.port, on_packet, backoff_min_s=0.2, backoff_max_s=1.0
+        )
+        await client.start()
+        while not self._halt.is_set():
+            await asyncio.sleep(0.05)
+            self.duplicates = client.counters.duplicates
+            self.connects = client.counters.connects
+        await client.stop()
+
+    def finish(self) -> None:
+        self._halt.set()
+        self.join(timeout=30)
+
+
+def _config(tmp: Path, broker: Mosquitto, vtp_port: int) -> Path:
     cfg = tmp / "tocsin.toml"
     cfg.write_text(
         f'registry = "{SITES}"\n'
@@ -39,6 +74,9 @@ def _config(tmp: Path, broker: Mosquitto) -> Path:
         'role = "test"\n'
         "internal_far_per_year = 1e9\npublic_far_per_year = 1e9\n"
         "burst = 1000\nmax_per_hour = 1e6\n"
+        "[alerts.transport]\n"
+        f"port = {vtp_port}\n"
+        'allow = [{ name = "watcher", network = "127.0.0.1/32" }]\n'
     )
     return cfg
 
@@ -84,10 +122,14 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
 ) -> None:
     asyncio.run(_watch(mosquitto.port, drain_s=None))
     lines = demo_lines()
-    cfg = _config(tmp_path, mosquitto)
+    vtp_port = free_port()
+    cfg = _config(tmp_path, mosquitto, vtp_port)
     data = tmp_path / "data"
     db = data / "alerts.sqlite"
     svc = running_service(stack, cfg)
+    watcher = VtpWatcher(vtp_port)
+    watcher.start()
+    stack.callback(watcher.finish)
     publish_sync(mosquitto.port, lines[: len(lines) // 2])
     _wait(lambda: len(_rows(db, "SELECT ivorn FROM alerts")) >= 30, 120, "30 alerts")
     svc.stop(signal.SIGKILL)  # in the middle of the burst
@@ -96,7 +138,7 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
         (str(i), str(s))
         for i, s in _rows(db, "SELECT ivorn, sink FROM deliveries WHERE state='sent'")
     }
-    assert len(in_flight) <= 2  # at most one per sink at a time
+    assert len(in_flight) <= 3  # at most one per sink (mqtt, vtp:watcher, dir) at a time
     done_before = {
         str(i)
         for (i,) in _rows(db, "SELECT ivorn FROM deliveries WHERE sink='mqtt' AND state='done'")
@@ -139,6 +181,16 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
     # none twice, except a packet whose acknowledgement the kill interrupted
     assert twice <= {i for i, s in in_flight if s == "mqtt"}
     assert not twice & done_before
+    # the transport subscriber: every alert once (it drops a byte-identical resend,
+    # VTP 2.0 §8; only the packet in flight at the kill can be resent)
+    watcher.finish()
+    assert watcher.connects >= 2  # it was cut off by the kill and came back
+    vtp = Counter(read_alert(p).ivorn for p in watcher.got)
+    assert set(vtp) == set(alerts)
+    assert max(vtp.values()) == 1
+    assert watcher.duplicates <= sum(1 for _, s in in_flight if s == "vtp:watcher")
+    for p in watcher.got:
+        assert p == alerts[read_alert(p).ivorn]
     for ivorn, xml in alerts.items():  # the packet directory holds each alert once
         assert (data / "alerts" / (ivorn.split("#")[1] + ".xml")).read_bytes() == xml
     assert json.loads((out / "summary.json").read_text())["alerts_held"] == 0

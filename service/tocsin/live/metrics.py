@@ -67,6 +67,18 @@ class Metrics:
             ["sink", "outcome"],
             registry=r,
         )
+        self.transport_subscribers = Gauge(
+            "tocsin_transport_subscribers",
+            "VOEvent transport subscribers connected now",
+            registry=r,
+        )
+        self.transport_totals = Gauge(
+            "tocsin_transport_totals",
+            "Running totals of the VOEvent transport server (accepted, refused, sent, acked, "
+            "naked, timed_out, overflows, disconnect_<reason> ...)",
+            ["what"],
+            registry=r,
+        )
         self.connected = Gauge(
             "tocsin_broker_connected", "1 while connected to the broker", registry=r
         )

@@ -55,6 +55,7 @@ from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
+from tocsin.live.transport import AllowedNetwork, TransportServer
 from tocsin.model.batch import HitBatch, parse_batch
 from tocsin.model.candidate import Candidate
 from tocsin.model.registry import SiteRegistry
@@ -116,6 +117,7 @@ class Service:
         self.dispatcher = AlertDispatcher(
             self.archive, self.packet_dir, topics.alerts_topic(self.root), self.metrics
         )
+        self.transport: TransportServer | None = None
         self.pipeline = self._restore()
         # astropy loads its Earth-orientation tables on the first sky transform (~0.5 s):
         # do it now, not when the first candidate's direction is fitted
@@ -250,6 +252,14 @@ class Service:
         wm = self.pipeline.orderer.watermark
         if wm is not None:
             self.metrics.lag.set((self.clock() - wm) / NS_PER_S)
+        tr = self.transport
+        if tr is not None:
+            self.metrics.transport_subscribers.set(len(tr.connected()))
+            c = tr.counters
+            for k in ("accepted", "refused", "sent", "acked", "naked", "timed_out", "overflows"):
+                self.metrics.transport_totals.labels(k).set(getattr(c, k))
+            for reason, n in c.disconnects.items():
+                self.metrics.transport_totals.labels(f"disconnect_{reason}").set(n)
         est = self.pipeline.engine.last_rates_hz
         if est is not None:
             for sid, r in zip(self.registry.ids, est, strict=True):
@@ -314,6 +324,7 @@ class Service:
     async def run(self, stop: asyncio.Event) -> None:
         """Connect, consume and reconnect until ``stop`` is set; then checkpoint."""
         backoff = 0.5
+        self.transport = await self._start_transport()
         deliver = asyncio.create_task(self.dispatcher.run(stop), name="alert-dispatch")
         try:
             while not stop.is_set():
@@ -350,8 +361,30 @@ class Service:
             stop.set()
             with contextlib.suppress(asyncio.CancelledError):
                 await deliver
+            if self.transport is not None:
+                await self.transport.close()
             self.save_checkpoint()
             event(log, "stopped", checkpoint=str(self.ckpt_path))
+
+    async def _start_transport(self) -> TransportServer | None:
+        """The VOEvent transport server for subscribers, if configured (port 0: none)."""
+        t = self.cfg.alerts.transport
+        if t is None or not t.port or not t.allow:
+            return None
+        server = TransportServer(
+            origin=self.cfg.alerts.stream_ivorn,
+            allow=[AllowedNetwork.parse(e.name, e.network) for e in t.allow],
+            host=t.host,
+            port=t.port,
+            idle_s=t.idle_s,
+            reply_timeout_s=t.ack_timeout_s,
+            on_result=self.dispatcher.on_result,
+            on_connect=lambda name: self.dispatcher.wake.set(),
+        )
+        await server.start()
+        self.dispatcher.server = server
+        event(log, "transport_listening", host=t.host, port=server.port)
+        return server
 
     def _client(self) -> aiomqtt.Client:
         b = self.broker
