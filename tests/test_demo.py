@@ -8,6 +8,8 @@ from pathlib import Path
 
 import pytest
 
+from tests.livenet import DEMO, SITES
+from tocsin.alerts.packet import read_alert
 from tocsin.cli.main import main
 
 pytestmark = pytest.mark.slow
@@ -25,4 +27,28 @@ def test_demo_finds_its_front(tmp_path: Path, capsys: pytest.CaptureFixture[str]
     fronts = [c for c in cands if c["statistic"] == "front" and c["multiplicity"] >= 6]
     assert fronts and fronts[0]["far_per_year"] < 365.25
     assert fronts[0]["ra_deg"] is not None
+    # the front became a test alert: archived, its packet written, marked as a test
+    assert "ALERT (test) new/" in out
+    packets = sorted((tmp_path / "data" / "alerts").glob("*.xml"))
+    assert packets
+    p = read_alert(packets[0].read_bytes())
+    assert p.role == "test"
     print(f"demo took {elapsed:.0f} s")
+
+
+def test_demo_of_the_shipped_recording_gives_replays_ivorns(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    live = tmp_path / "live"
+    argv = ["demo", "--recording", str(DEMO), "--sites", str(SITES), "--workdir", str(live)]
+    assert main([*argv, "--speed", "1000"]) == 0
+    out = capsys.readouterr().out
+    assert main(["replay", str(DEMO), "--sites", str(SITES), "--out", str(tmp_path / "r")]) == 0
+    live_ivorns = sorted(p.stem for p in (live / "data" / "alerts").glob("*.xml"))
+    replay_ivorns = sorted(p.stem for p in (tmp_path / "r" / "alerts").glob("*.xml"))
+    assert live_ivorns and live_ivorns == replay_ivorns
+    for name in live_ivorns:
+        assert f"#{name}" in out
+        a = read_alert((live / "data" / "alerts" / f"{name}.xml").read_bytes())
+        b = read_alert((tmp_path / "r" / "alerts" / f"{name}.xml").read_bytes())
+        assert a.ivorn == b.ivorn and a.params == b.params  # same candidate, same content

@@ -6,7 +6,13 @@ with a simulated detector at each site's rate); the service; and, about 20 s
 in, a plane front injected into six to eight GPS-timed sites far apart. The service starts with
 150 s of simulated history already received (as after a restart from its
 journal), so its rate estimates are warm and the front can be judged at once.
-Everything (journal, candidates, spools) goes to a working directory.
+Everything (journal, candidates, alerts, spools) goes to a working directory.
+Alerts are role ``test`` (the demo never makes an observation alert).
+
+With a recording (:func:`run_recording_demo`) the demo instead plays a recorded
+stream through the broker at a chosen multiple of real time (every batch to its
+own site's topic, as the agents would send it) and shows the alerts the service
+archived; their IVORNs equal those ``tocsin replay`` gives for the same recording.
 """
 
 from __future__ import annotations
@@ -26,6 +32,8 @@ import orjson
 
 from tocsin.engine.sky import ecef_unit_to_radec, local_up_ecef, radec_to_ecef_unit
 from tocsin.gpstime import gps_now_ns, gps_ns_to_utc_iso
+from tocsin.io.recording import open_text
+from tocsin.live import topics
 from tocsin.live.agent import Agent, AgentSettings
 from tocsin.live.embedded_broker import embedded_broker
 from tocsin.live.service import Service
@@ -143,6 +151,8 @@ async def run_demo(
         def on_candidate(c: Candidate) -> None:
             found.append(c)
             say(_describe(c, front))
+            for a in service.archive.alerts_for(c.id)[-1:]:
+                say(_describe_alert(a.ivorn, a.kind, a.level, a.status, service))
 
         service.listeners.append(on_candidate)
         stop_service = asyncio.Event()
@@ -236,6 +246,98 @@ def _status_line(service: Service, reg: SiteRegistry, elapsed: float) -> str:
         f"  t+{elapsed:4.0f} s  sites reporting {live}/{len(reg)}  batches {c.accepted:,}  "
         f"hits {e.counters.hits:,}  watermark lag {lag:.1f} s  late {c.rejected.get('late', 0)}"
     )
+
+
+def _describe_alert(ivorn: str, kind: str, level: str, status: str, service: Service) -> str:
+    path = service.packet_dir / (ivorn.split("#", 1)[1] + ".xml")
+    return (
+        f"  ALERT ({service.cfg.alerts.role}) {kind}/{level} {status}: {ivorn}\n"
+        f"        VOEvent packet: {path}"
+    )
+
+
+async def run_recording_demo(
+    workdir: Path,
+    recording: Path,
+    sites: Path,
+    *,
+    speed: float = 20.0,
+    out: TextIO | None = None,
+) -> int:
+    """Play ``recording`` through an embedded broker into the service at ``speed`` x real
+    time; print the candidates and alerts; return 0 if at least one alert was archived."""
+    import aiomqtt
+
+    def say(text: str) -> None:
+        print(text, file=out or sys.stdout, flush=True)
+
+    if not speed > 0:
+        raise ValueError(f"speed {speed!r} must be positive")
+    reg = SiteRegistry.from_toml(sites)
+    with open_text(recording, "rb") as fh:
+        lines = [ln.strip() for ln in fh if ln.strip()]
+    workdir.mkdir(parents=True, exist_ok=True)
+    port = _free_port()
+    broker = BrokerConfig(url=f"mqtt://127.0.0.1:{port}", client_id="tocsin-demo-service")
+    cfg = ServiceConfig(
+        registry=sites.resolve(),
+        data_dir=workdir / "data",
+        broker=broker,
+        metrics=MetricsConfig(port=0),
+    )
+    async with embedded_broker("127.0.0.1", port) as url:
+        say(
+            f"tocsin demo: embedded broker {url}, playing {recording} ({len(lines):,} batches) "
+            f"at {speed:g}x real time, work dir {workdir}"
+        )
+        service = Service(cfg)
+
+        def on_candidate(c: Candidate) -> None:
+            say(
+                f"  CANDIDATE {c.trigger}/{c.statistic} {gps_ns_to_utc_iso(c.time_gps_ns)} "
+                f"{c.multiplicity} sites, FAR {c.far_per_year:.3g}/yr"
+            )
+            for a in service.archive.alerts_for(c.id)[-1:]:
+                say(_describe_alert(a.ivorn, a.kind, a.level, a.status, service))
+
+        service.listeners.append(on_candidate)
+        stop = asyncio.Event()
+        svc_task = asyncio.create_task(service.run(stop), name="service")
+        try:
+            async with aiomqtt.Client("127.0.0.1", port, identifier="tocsin-demo-player") as c:
+                t_wall0 = time.monotonic()
+                t_data0: int | None = None
+                for k, line in enumerate(lines):
+                    obj = orjson.loads(line)
+                    obj.pop("recv_ns", None)
+                    live = obj.get("live") or [[0, 0]]
+                    end = live[-1][1] if isinstance(live[0], list) else live[1]
+                    if isinstance(end, int):
+                        t_data0 = end if t_data0 is None else t_data0
+                        due = (end - t_data0) / NS_PER_S / speed
+                        wait = due - (time.monotonic() - t_wall0)
+                        if wait > 0:
+                            await asyncio.sleep(wait)
+                    site = str(obj.get("site", "?"))
+                    topic = topics.hits_topic(topics.DEFAULT_ROOT, site)
+                    await c.publish(topic, orjson.dumps(obj), qos=1)
+                    if k % 2000 == 0:
+                        say(_status_line(service, reg, time.monotonic() - t_wall0))
+            say("  recording sent; waiting for the service to close the last windows")
+            # the service's idle tick closes the windows that reach the end of the data
+            n_alerts = -1
+            for _ in range(40):
+                await asyncio.sleep(0.5)
+                wm = service.pipeline.orderer.watermark
+                if wm is not None and wm > gps_now_ns() - 3600 * NS_PER_S:
+                    break
+            n_alerts = len(service.archive.latest(limit=1_000_000))
+        finally:
+            stop.set()
+            await svc_task
+            service.close()
+        say(f"  {n_alerts} alert(s) archived in {cfg.data_dir / 'alerts.sqlite'}")
+        return 0 if n_alerts > 0 else 1
 
 
 def _front_found(found: list[Candidate], front: Front) -> bool:
