@@ -167,9 +167,22 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
         120,
         "every delivery done",
     )
+    # an operator withdraws one alert from another process; the running service sends it
+    first = sorted(replayed)[0]
+    assert main(["retract", first, "--reason", "drill: clock fault", "--config", str(cfg)]) == 0
+    retraction = first + "-x"
+    _wait(
+        lambda: (
+            _rows(db, "SELECT count(*) FROM deliveries WHERE state != 'done'")[0][0] == 0
+            and len(_rows(db, f"SELECT 1 FROM deliveries WHERE ivorn = '{retraction}'")) == 3
+        ),
+        60,
+        "the retraction delivered",
+    )
     assert svc.stop(signal.SIGTERM) == 0
     alerts = {str(i): bytes(x) for i, x in _rows(db, "SELECT ivorn, xml FROM alerts")}  # type: ignore[arg-type]
-    assert set(alerts) == replayed
+    assert set(alerts) == replayed | {retraction}
+    assert read_alert(alerts[retraction]).citations == [(first, "retraction")]
     assert len(done_before) >= 10  # the kill really came in the middle of deliveries
 
     got = asyncio.run(_watch(mosquitto.port, drain_s=3.0))
