@@ -102,9 +102,17 @@ class AlertDispatcher:
             with contextlib.suppress(TimeoutError):
                 await asyncio.wait_for(self.wake.wait(), POLL_S)
             self.wake.clear()
+        # stopping: the packet directory still gets what was archived last (no
+        # network sink is started now; they resume from the archive at the next start)
+        try:
+            await self.deliver_once(local_only=True)
+        except Exception as exc:
+            event(log, "dispatch_error", logging.ERROR, error=repr(exc))
 
-    async def deliver_once(self) -> int:
-        """One pass over the open deliveries; returns how many were completed or started."""
+    async def deliver_once(self, *, local_only: bool = False) -> int:
+        """One pass over the open deliveries; returns how many were completed or started.
+
+        ``local_only``: only the packet directory."""
         n = 0
         connected = set(self.server.connected()) if self.server is not None else set()
         for d, xml in self.archive.open_deliveries():
@@ -113,6 +121,8 @@ class AlertDispatcher:
                 self.archive.mark(d.ivorn, SINK_DIR, "done", _now())
                 self.metrics.deliveries.labels("dir", "done").inc()
                 n += 1
+            elif local_only:
+                continue
             elif d.sink == SINK_MQTT:
                 if self.client is None:
                     continue

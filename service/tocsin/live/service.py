@@ -32,6 +32,7 @@ import asyncio
 import contextlib
 import dataclasses
 import logging
+import math
 import random
 import ssl
 import time
@@ -70,7 +71,10 @@ SYNC_EVERY_S = 0.05
 TICK_EVERY_S = 0.25
 """Idle ticks advance the watermark this often (s)."""
 IDLE_TICK_AFTER_S = 10.0
-"""With no message for this long (s), ticks advance the watermark even when behind."""
+"""After this long (s) of waiting with no message, ticks advance the watermark even
+when the data are behind the wall clock (input stopped)."""
+STALL_S = 0.5
+"""An iteration of the message loop taking this much (s) beyond a tick is a stall."""
 CHECKPOINT_EVERY_S = 300.0
 REBUILD_S = 7200.0
 """Without a checkpoint, this much recent journal (s) is replayed at start."""
@@ -103,7 +107,6 @@ class Service:
         self._last_recv = 0
         self._last_tick = 0
         self._max_live_end = 0
-        self._last_msg_wall = 0
         self._last_ckpt = time.monotonic()
         self.listeners: list[Callable[[Candidate], None]] = []
         """Called with every candidate written (the demo's display)."""
@@ -171,7 +174,6 @@ class Service:
     def on_hits(self, topic_site: str, payload: bytes) -> bool:
         """Handle one hits message. Returns True if it was journaled (ack after sync)."""
         wall = self.clock()
-        self._last_msg_wall = wall
         if len(payload) > self.broker.max_message_bytes:
             self._reject(
                 topic_site,
@@ -237,11 +239,12 @@ class Service:
             self.metrics.live.labels(topic_site).set(0 if state == "offline" else 1)
             event(log, "site_status", site=topic_site, state=state)
 
-    def tick(self) -> None:
-        """Advance the watermark by the wall clock when caught up (or long idle)."""
+    def tick(self, quiet_s: float = math.inf) -> None:
+        """Advance the watermark by the wall clock when caught up, or after ``quiet_s``
+        (s) of the event loop waiting with no message arriving exceeds the idle limit."""
         wall = self.clock()
         behind = wall - self._max_live_end > self.lateness_ns + NS_PER_S
-        idle = wall - self._last_msg_wall > IDLE_TICK_AFTER_S * NS_PER_S
+        idle = quiet_s > IDLE_TICK_AFTER_S
         if behind and not idle:
             return
         self._last_tick = max(self._last_tick, wall)
@@ -415,25 +418,39 @@ class Service:
         pending: list[tuple[int, int]] = []
         last_sync = last_tick = last_gauges = time.monotonic()
         task = asyncio.create_task(reader(), name="mqtt-reader")
+        # Ticks move the watermark by the wall clock, so they must never overtake
+        # messages that are still unread. After the loop was held up (a long
+        # computation anywhere in it), messages may wait in the socket or the
+        # client while our queue looks empty: ticks pause until a wait of a full
+        # TICK_EVERY_S passes with nothing arriving. ``quiet`` adds up such waits.
+        stalled = False
+        quiet = 0.0
         try:
             while True:
                 if stop.is_set():
                     while not queue.empty():
                         self._dispatch(client, queue.get_nowait(), pending)
                     break
+                t_wait = time.monotonic()
                 try:
                     msg = await asyncio.wait_for(queue.get(), TICK_EVERY_S)
                     self._dispatch(client, msg, pending)
+                    quiet = 0.0
                 except TimeoutError:
-                    pass
+                    waited = time.monotonic() - t_wait
+                    if waited < TICK_EVERY_S + STALL_S:
+                        stalled = False
+                        quiet += waited
+                    else:  # the loop was held up during the wait itself
+                        stalled = True
                 if task.done():  # connection lost: re-raise its MqttError
                     task.result()
                 now = time.monotonic()
                 if pending and (now - last_sync >= SYNC_EVERY_S or len(pending) >= 1000):
                     self._sync_and_ack(client, pending)
                     last_sync = now
-                if queue.empty() and now - last_tick >= TICK_EVERY_S:
-                    self.tick()
+                if queue.empty() and not stalled and now - last_tick >= TICK_EVERY_S:
+                    self.tick(quiet)
                     last_tick = now
                 if now - last_gauges >= 1.0:
                     self.refresh_gauges()
@@ -441,6 +458,8 @@ class Service:
                 if now - self._last_ckpt >= CHECKPOINT_EVERY_S:
                     self._sync_and_ack(client, pending)
                     self.save_checkpoint()
+                if time.monotonic() - t_wait > TICK_EVERY_S + STALL_S:
+                    stalled = True  # this iteration's own work held the loop up
         finally:
             self._sync_and_ack(client, pending)
             task.cancel()
