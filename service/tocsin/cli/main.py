@@ -22,6 +22,7 @@ COMMANDS: dict[str, str] = {
     "serve": "tocsin.cli.serve",
     "demo": "tocsin.cli.demo",
     "agent": "tocsin.cli.agent",
+    "tune": "tocsin.cli.tune",
 }
 
 
