@@ -8,6 +8,13 @@ i.e. the measured curve lies on the line ``rate = F``. Error bars are 1-sigma
 Poisson intervals (``astropy.stats.poisson_conf_interval``, ``frequentist-confidence``,
 Gehrels 1986, ApJ 303, 336).
 
+A single site's excess (statistic ``site``) is the exception: a slide moves a
+site's data but does not change it, so every slide sees the same fluctuations of
+each site again. Its candidates still count towards the mean rate (unbiased), but
+each one stands for up to ``S`` (the number of slides) replicas in the variance:
+``var N = N_other + S x N_site``. Curves that hold such candidates get Gaussian
+error bars from that variance; the others Poisson intervals.
+
 Curves are made per trigger (all its window scales together — the engine's FAR
 counts every scale as a trial, so only this sum is comparable with ``F``) and per
 trigger and window scale (``window_s`` of the candidate: the scale whose decision
@@ -53,37 +60,59 @@ def threshold_grid(t_years: float, far_max: float, per_decade: int = 4) -> F64Ar
     return grid
 
 
+REPLICATED_STATISTICS = frozenset({"site"})
+"""Statistics of one site's data alone: time slides repeat, not renew, their background."""
+
+
 def far_curve(
-    fars: Sequence[float],
+    cands: Sequence[CandRow],
     thresholds: F64Array,
     t_years: float,
     trigger: str,
+    n_slides: int,
     window_s: float | None = None,
 ) -> FarCurve:
-    """Counts of ``fars <= F`` for each threshold, and the rate with 1-sigma errors."""
-    f = np.sort(np.asarray(fars, dtype=float))
+    """Counts of candidates with FAR <= F for each threshold, and the rate with 1-sigma errors."""
+    f = np.sort(np.asarray([c.far for c in cands], dtype=float))
     counts = np.searchsorted(f, thresholds, side="right").astype(np.int64)
+    var = count_variance(cands, thresholds, n_slides)
     lo, hi = poisson_conf_interval(counts, interval="frequentist-confidence", sigma=1)
+    lo, hi = np.asarray(lo, dtype=float), np.asarray(hi, dtype=float)
+    mixed = var > counts
+    sd = np.sqrt(var)
+    lo = np.where(mixed, np.maximum(counts - sd, 0.0), lo)
+    hi = np.where(mixed, counts + sd, hi)
     return FarCurve(
-        trigger,
-        window_s,
-        thresholds,
-        counts,
-        counts / t_years,
-        np.asarray(lo, dtype=float) / t_years,
-        np.asarray(hi, dtype=float) / t_years,
+        trigger, window_s, thresholds, counts, counts / t_years, lo / t_years, hi / t_years
     )
 
 
-def slide_curves(cands: Sequence[CandRow], t_years: float, far_max: float) -> list[FarCurve]:
+def count_variance(cands: Sequence[CandRow], thresholds: F64Array, n_slides: int) -> F64Array:
+    """Variance of the count at each threshold: 1 per candidate, ``n_slides`` per
+    candidate of a replicated statistic (see the module docstring)."""
+    w = np.array(
+        [n_slides if c.statistic in REPLICATED_STATISTICS else 1 for c in cands], dtype=float
+    )
+    f = np.asarray([c.far for c in cands], dtype=float)
+    order = np.argsort(f, kind="stable")
+    cum = np.concatenate([[0.0], np.cumsum(w[order])])
+    var: F64Array = cum[np.searchsorted(f[order], thresholds, side="right")]
+    return var
+
+
+def slide_curves(
+    cands: Sequence[CandRow], t_years: float, far_max: float, n_slides: int
+) -> list[FarCurve]:
     """One curve per trigger (all scales) and one per (trigger, window scale)."""
     grid = threshold_grid(t_years, far_max)
     out: list[FarCurve] = []
     for trig in TRIGGERS:
         mine = [c for c in cands if c.trigger == trig]
-        out.append(far_curve([c.far for c in mine], grid, t_years, trig))
+        out.append(far_curve(mine, grid, t_years, trig, n_slides))
         for w in sorted({c.window_s for c in mine}):
-            out.append(far_curve([c.far for c in mine if c.window_s == w], grid, t_years, trig, w))
+            out.append(
+                far_curve([c for c in mine if c.window_s == w], grid, t_years, trig, n_slides, w)
+            )
     return out
 
 
@@ -96,20 +125,24 @@ class CalibrationRow:
     expected: float
     observed: int
     z: float
-    """(observed - expected) / sqrt(expected)."""
+    """(observed - expected) / standard deviation of the expected count."""
 
 
 def calibration_rows(
-    cands: Sequence[CandRow], t_years: float, expected_counts: Sequence[float]
+    cands: Sequence[CandRow], t_years: float, expected_counts: Sequence[float], n_slides: int
 ) -> list[CalibrationRow]:
-    """For each trigger and each wanted expected count ``F x T``: the observed count."""
+    """For each trigger and each wanted expected count ``F x T``: the observed count, and
+    its deviation in units of the expected count's standard deviation (Poisson, widened
+    by the observed share of replicated candidates)."""
     rows: list[CalibrationRow] = []
     for trig in TRIGGERS:
-        fars = [c.far for c in cands if c.trigger == trig]
+        mine = [c for c in cands if c.trigger == trig]
         for e in expected_counts:
             f = e / t_years
-            obs = sum(1 for x in fars if x <= f)
-            rows.append(CalibrationRow(trig, f, e, obs, (obs - e) / math.sqrt(e)))
+            obs = sum(1 for c in mine if c.far <= f)
+            var = float(count_variance(mine, np.array([f]), n_slides)[0])
+            inflate = var / obs if obs > 0 else 1.0
+            rows.append(CalibrationRow(trig, f, e, obs, (obs - e) / math.sqrt(e * inflate)))
     return rows
 
 

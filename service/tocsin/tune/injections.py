@@ -11,8 +11,8 @@ Two kinds of signal, made by the simulator's own injection code
   is the strength ``boost``.
 
 Injections of one set are spaced so that no window of the engine holds two of
-them (fronts: twice the longest coincidence slot; bursts: the burst plus twice
-the longest excess window), start after the rate estimate's warm-up, and are
+them (fronts: twice the longest coincidence slot; bursts: the burst plus
+1.1 x the longest excess window), start after the rate estimate's warm-up, and are
 placed at a random phase so that they do not line up with the excess grid.
 
 A front is *found* at threshold F if a coincidence candidate with
@@ -123,7 +123,7 @@ def plan_injections(
             "burst",
             list(settings.burst_boosts),
             settings.bursts_per_class,
-            settings.burst_dur_s + 2.0 * max(excess_window_s, coincidence_window_s),
+            settings.burst_dur_s + 1.1 * max(excess_window_s, coincidence_window_s),
             settings.burst_dur_s,
         ),
     )

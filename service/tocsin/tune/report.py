@@ -233,7 +233,7 @@ def render(
         else ""
     )
     calib = _table(
-        ["trigger", "threshold F (per yr)", "expected F×T", "observed", "(obs − exp)/√exp"],
+        ["trigger", "threshold F (per yr)", "expected F×T", "observed", "(obs − exp)/σ"],
         [
             [r.trigger, f"{r.threshold:.4g}", f"{r.expected:g}", str(r.observed), f"{r.z:+.2f}"]
             for r in res.calibration
@@ -329,8 +329,12 @@ the same, split by the window scale of each candidate (the scale of its best dec
 the accidentals come from. Each scale alone lies below the line, because the engine's rate
 counts every scale as a trial.</p>
 {calib}
-<p>Observed and expected numbers of slide candidates at thresholds where 5, 50 and 500 are
-expected: a |z| above about 3 would mean the engine's rate is off.</p>
+<p>Observed and expected numbers of slide candidates at thresholds where 3, 30 and 300 are
+expected: a |z| above about 3 would mean the engine's rate is off. σ is Poisson, widened for the
+excess trigger's single-site windows: a slide moves a site's data but does not change it, so each
+slide sees the same single-site fluctuations again, and each such candidate counts as
+{len(res.slides)} (the number of slides) in the variance; the same applies to the error bars
+above.</p>
 
 <h2>Efficiency: injected signals found</h2>
 {_img(efficiency_figure(res.outcomes, res.recommendations, grid), "efficiency curves")}

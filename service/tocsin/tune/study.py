@@ -32,7 +32,7 @@ moves sites against each other; the exact check needs some room)."""
 SPARE_SLOTS = 1.5
 """The automatic step leaves this many slots per site (when the live time allows), so
 that sites can be placed away from each other's dead-time drift."""
-CALIBRATION_COUNTS = (5.0, 50.0, 500.0)
+CALIBRATION_COUNTS = (3.0, 30.0, 300.0)
 FAR_MAX_COUNT = 1000.0
 """By default slide candidates are kept up to the FAR at which this many are expected."""
 """Expected accidental counts F x T at which measured and analytic rates are tabulated."""
@@ -159,9 +159,9 @@ def run_study(
     t_years = years(sum(r.searched_s for r in slide_res))
     cands = [c for r in slide_res for c in r.candidates]
     outs = [o for r in inj_res for o in r.outcomes]
-    curves = slide_curves(cands, t_years, far_max)
+    curves = slide_curves(cands, t_years, far_max, len(slides))
     calib = calibration_rows(
-        cands, t_years, [e for e in CALIBRATION_COUNTS if e / t_years <= far_max]
+        cands, t_years, [e for e in CALIBRATION_COUNTS if e / t_years <= far_max], len(slides)
     )
     recs = [
         recommend(trig, cands, t_years, far_max, opts.target_far_per_year, outs)
