@@ -114,3 +114,23 @@ def test_archive_refuses_to_mix_roles(tmp_path: Path) -> None:
         Archive(tmp_path / "a.sqlite", stream=cfg.stream_ivorn, role="observation")
     with pytest.raises(ConfigError, match="holds stream"):
         Archive(tmp_path / "a.sqlite", stream="ivo://other.example/x", role="test")
+
+
+def test_per_trigger_thresholds_from_the_tune_snippet(tmp_path: Path) -> None:
+    import tomllib
+
+    from tocsin.tune.recommend import Recommendation, config_snippet
+
+    recs = [
+        Recommendation("coincidence", 1.0, 0.25, "measured", 0.1, 0, 1.0, 0.1),
+        Recommendation("excess", 1.0, 0.02, "measured", 0.1, 0, 1.0, 0.1),
+    ]
+    snippet = tomllib.loads(config_snippet(recs, "test"))
+    cfg = config(**snippet["alerts"])  # the snippet pastes into the [alerts] table
+    assert cfg.thresholds("coincidence") == (0.25, 365.25)
+    assert cfg.thresholds("excess") == (0.02, 365.25)
+    desk = _desk(tmp_path, cfg)
+    pub = desk.consider(front_candidate(far=0.2))
+    assert pub is not None and pub.level == "public"
+    internal = desk.consider(excess_candidate(far=0.05))  # above the excess bound
+    assert internal is not None and internal.level == "internal"

@@ -90,8 +90,9 @@ def test_tune_writes_a_report_a_snippet_and_the_numbers(
     printed = capsys.readouterr().out
     assert "report" in printed and "bound far_per_year" in printed
     snippet = tomllib.loads((out / "thresholds.toml").read_text())
-    assert set(snippet["thresholds"]) == {"coincidence_far_per_year", "excess_far_per_year"}
-    assert all(v > 0 for v in snippet["thresholds"].values())
+    bounds = snippet["alerts"]["public_far_per_year_by_trigger"]
+    assert set(bounds) == {"coincidence", "excess"}
+    assert all(v > 0 for v in bounds.values())
     page = (out / "report.html").read_text()
     assert page.count("data:image/png;base64,") == 3  # rates, efficiency, per-site rates
     for heading in (

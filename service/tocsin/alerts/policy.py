@@ -2,6 +2,7 @@
 
 Pure and synchronous (the service, replay and the ``retract`` command share it):
 
+* Thresholds may be set per trigger (``*_by_trigger``, e.g. from ``tocsin tune``).
 * A candidate whose false alarm rate is at most ``internal_far_per_year`` becomes an
   ``internal`` alert (our own sinks: the MQTT alert topic, the packet directory); at
   most ``public_far_per_year`` a ``public`` one (also every transport subscriber).
@@ -129,10 +130,11 @@ class AlertDesk:
         return out
 
     # -- candidates ------------------------------------------------------------
-    def level_of(self, far_per_year: float) -> Level | None:
-        if far_per_year <= self.cfg.public_far_per_year:
+    def level_of(self, far_per_year: float, trigger: str = "") -> Level | None:
+        public, internal = self.cfg.thresholds(trigger)
+        if far_per_year <= public:
             return "public"
-        if far_per_year <= self.cfg.internal_far_per_year:
+        if far_per_year <= internal:
             return "internal"
         return None
 
@@ -140,7 +142,7 @@ class AlertDesk:
         """Archive ``cand``; return the new alert row if it became (or updated) an alert."""
         obj = cand.to_json_obj()
         self.archive.add_candidate(obj, orjson.dumps(obj))
-        level = self.level_of(cand.far_per_year)
+        level = self.level_of(cand.far_per_year, cand.trigger)
         if level is None:
             return None
         earlier = [a for a in self.archive.alerts_for(cand.id) if a.kind != "retraction"]

@@ -9,6 +9,9 @@ Layout (all keys optional; the defaults are safe: role ``test``)::
     internal_far_per_year = 365.25      # alert to our own sinks (MQTT topic, directory): 1/day
     public_far_per_year = 1.0           # also to external subscribers (VOEvent transport): 1/yr
     max_per_hour = 12.0                 # token bucket refill (alerts per hour of data time)
+    # per-trigger thresholds (e.g. from `tocsin tune`) override the two above:
+    # [alerts.public_far_per_year_by_trigger]  coincidence = 0.5 / excess = 0.5
+    # [alerts.internal_far_per_year_by_trigger]
     burst = 5                           # token bucket size
     author_title = "Tocsin detector network"
     contact_email = ""
@@ -31,7 +34,15 @@ import re
 from pathlib import Path
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    PositiveFloat,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from tocsin.model.config import read_toml, validation_error
 
@@ -100,7 +111,15 @@ class AlertConfig(BaseModel):
     directory: Path | None = None
     skymaps: bool = True
     skymap_url_base: str = ""
+    public_far_per_year_by_trigger: dict[Literal["coincidence", "excess"], PositiveFloat] = {}
+    internal_far_per_year_by_trigger: dict[Literal["coincidence", "excess"], PositiveFloat] = {}
     transport: TransportConfig | None = None
+
+    def thresholds(self, trigger: str) -> tuple[float, float]:
+        """(public, internal) FAR thresholds per year for a trigger."""
+        pub = self.public_far_per_year_by_trigger.get(trigger, self.public_far_per_year)  # type: ignore[call-overload]
+        internal = self.internal_far_per_year_by_trigger.get(trigger, self.internal_far_per_year)  # type: ignore[call-overload]
+        return float(pub), float(max(internal, pub))
 
     @field_validator("authority")
     @classmethod

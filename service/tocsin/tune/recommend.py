@@ -16,9 +16,10 @@ is at most the target:
   are not used for ``r``: there accidental decisions are close enough in time
   to merge into fewer candidates.
 
-The snippet is TOML under ``[thresholds]``: the engine has no per-trigger alert
-threshold setting yet (its ``candidate_far_per_year`` decides only what is
-written as a candidate), so these keys are for the alert stage.
+The snippet is TOML for the service config's alert table,
+``[alerts.public_far_per_year_by_trigger]`` (alerts to external subscribers; paste
+it under ``[alerts.internal_far_per_year_by_trigger]`` instead to set the internal
+level).
 """
 
 from __future__ import annotations
@@ -126,16 +127,17 @@ def config_snippet(recs: Sequence[Recommendation], source: str) -> str:
     """TOML ready to paste, with how each number was found as comments."""
     lines = [
         f"# Recommended by `tocsin tune` from {source}.",
-        "# The engine has no per-trigger alert threshold setting yet; these keys are",
-        "# for the alert stage. A decision alerts when its far_per_year is at most the bound.",
-        "[thresholds]",
+        "# Per-trigger alert thresholds: a candidate of that trigger becomes a public alert",
+        "# when its far_per_year is at most the bound (for internal alerts paste it under",
+        "# [alerts.internal_far_per_year_by_trigger] instead).",
+        "[alerts.public_far_per_year_by_trigger]",
     ]
     for r in recs:
         lines.append(
             f"# {r.trigger}: target {r.target_per_year:g}/yr, {r.method}; "
             f"{r.accidentals_passing} accidental(s) in {r.background_years:.4g} yr of slides"
         )
-        lines.append(f"{r.trigger}_far_per_year = {_toml_float(r.threshold_per_year)}")
+        lines.append(f"{r.trigger} = {_toml_float(r.threshold_per_year)}")
     return "\n".join(lines) + "\n"
 
 

@@ -307,9 +307,9 @@ of its injected hits; a burst when an excess candidate overlaps it in time.</li>
 
 <h2>Recommended thresholds</h2>
 {rec}
-<p>Ready to paste (also written as <code>{SNIPPET}</code>). The engine has no per-trigger
-alert threshold setting yet; the keys below, under <code>[thresholds]</code>, are for the
-alert stage: a decision alerts when its <code>far_per_year</code> is at most the bound.</p>
+<p>Ready to paste into the service config (also written as <code>{SNIPPET}</code>): a
+candidate of that trigger becomes a public alert when its <code>far_per_year</code> is at
+most the bound.</p>
 <pre>{e(snippet)}</pre>
 <p class="how"><b>How to read it.</b> "measured" means the slides hold enough background to
 count the accidentals at the target directly; "extrapolated" means the target is rarer than
