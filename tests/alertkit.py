@@ -10,18 +10,27 @@ T0 = GpsNs(1_457_481_798_000_000_003)  # 2026-03-14T00:03:00.000000003 UTC
 
 
 def front_candidate(
-    *, far: float = 0.05, revision: int = 1, sites: int = 6, t_ns: int = T0, cid: str = ""
+    *,
+    far: float = 0.05,
+    revision: int = 1,
+    sites: int = 6,
+    t_ns: int = T0,
+    cid: str = "",
+    skip: int = 0,
 ) -> Candidate:
-    names = [f"site-{k}" for k in range(sites)]
+    """A fitted front; ``skip`` leaves out the first hits (another seed of the cluster)."""
+    names = [f"site-{k}" for k in range(skip, sites)]
+    hits = [GpsNs(t_ns - 19_573_786 + 1_000_000 * k) for k in range(skip, sites)]
     c = Candidate(
         trigger="coincidence",
         statistic="front",
-        time_gps_ns=GpsNs(t_ns - 19_573_786),
+        time_gps_ns=hits[0],
         window_s=1e-6,
         sites=names,
         p_value=far * 1e-12,
         far_per_year=far,
-        multiplicity=sites,
+        multiplicity=len(names),
+        hit_times_ns=hits,
         ra_deg=149.99987774621263,
         dec_deg=35.000071900310026,
         err_deg=7.919361200686146e-05,

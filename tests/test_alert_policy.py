@@ -49,7 +49,7 @@ def test_update_cites_first_and_restart_never_renumbers(tmp_path: Path) -> None:
     cid = first.candidate_id
     upd = desk.consider(front_candidate(far=0.01, revision=2, sites=7, cid=cid))
     assert upd is not None and upd.kind == "update"
-    assert upd.ivorn == first.ivorn + "-u2"
+    assert upd.ivorn == first.ivorn + "-u1"
     assert read_alert(upd.xml).citations == [(first.ivorn, "supersedes")]
     assert desk.consider(front_candidate(far=0.01, revision=2, sites=7, cid=cid)) is None
     desk.archive.close()
@@ -73,6 +73,7 @@ def test_retraction(tmp_path: Path) -> None:
         desk.retract(first.ivorn + "-nope", "x")
     r = desk.retract(upd.ivorn, "timing fault at two sites")
     assert r.ivorn == first.ivorn + "-x" and r.level == "public"
+    assert upd.ivorn == first.ivorn + "-u1"
     assert read_alert(r.xml).citations == [(first.ivorn, "retraction")]
     assert {d.sink for d in desk.archive.deliveries(r.ivorn)} == {"dir", "mqtt", "vtp:obs-a"}
     with pytest.raises(AlertError, match="already retracted"):
@@ -134,3 +135,27 @@ def test_per_trigger_thresholds_from_the_tune_snippet(tmp_path: Path) -> None:
     assert pub is not None and pub.level == "public"
     internal = desk.consider(excess_candidate(far=0.05))  # above the excess bound
     assert internal is not None and internal.level == "internal"
+
+
+def test_other_seeds_of_one_cluster_join_its_alert_family(tmp_path: Path) -> None:
+    desk = _desk(tmp_path)
+    first = desk.consider(front_candidate(far=0.01))
+    assert first is not None
+    # the same front seen from its second hit: a separate candidate (and trial) in the
+    # engine, but not a second alert; nor a third from the third hit
+    second = front_candidate(far=0.5, skip=1)
+    assert second.id != first.candidate_id
+    assert desk.consider(second) is None
+    # a later seed that scores better supersedes the family's alert
+    better = front_candidate(far=0.001, skip=2)
+    upd = desk.consider(better)
+    assert upd is not None and upd.kind == "update" and upd.ivorn == first.ivorn + "-u1"
+    assert read_alert(upd.xml).params["candidate_id"] == better.id
+    assert read_alert(upd.xml).citations == [(first.ivorn, "supersedes")]
+    desk.archive.close()
+    again = _desk(tmp_path)  # the families survive a restart (rebuilt from the archive)
+    assert again.consider(front_candidate(far=0.002, skip=3)) is None
+    assert again.consider(front_candidate(far=0.0001, skip=4)) is not None
+    # a cluster that shares no hit is a new family
+    other = again.consider(front_candidate(far=0.01, t_ns=T0 + 3_000_000_000))
+    assert other is not None and other.kind == "new"

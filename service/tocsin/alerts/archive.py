@@ -34,6 +34,7 @@ CREATE TABLE IF NOT EXISTS candidates (
 CREATE TABLE IF NOT EXISTS alerts (
     seq INTEGER PRIMARY KEY AUTOINCREMENT,
     ivorn TEXT NOT NULL UNIQUE, candidate_id TEXT NOT NULL, revision INTEGER NOT NULL,
+    source_id TEXT NOT NULL DEFAULT '',
     kind TEXT NOT NULL, level TEXT NOT NULL, status TEXT NOT NULL,
     cites TEXT, note TEXT NOT NULL DEFAULT '', created_utc TEXT NOT NULL,
     event_gps_ns INTEGER, far_per_year REAL, skymap TEXT, xml BLOB NOT NULL);
@@ -53,7 +54,10 @@ class AlertRow:
     seq: int
     ivorn: str
     candidate_id: str
+    """The alert family: the id of the candidate whose first alert started it."""
     revision: int
+    source_id: str
+    """The candidate this packet reports (a revision or another seed of the same cluster)."""
     kind: str
     level: str
     status: str
@@ -129,13 +133,14 @@ class Archive:
         """
         with self._tx():
             cur = self.db.execute(
-                "INSERT OR IGNORE INTO alerts (ivorn, candidate_id, revision, kind, level, "
-                "status, cites, note, created_utc, event_gps_ns, far_per_year, skymap, xml) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "INSERT OR IGNORE INTO alerts (ivorn, candidate_id, revision, source_id, kind, "
+                "level, status, cites, note, created_utc, event_gps_ns, far_per_year, skymap, xml) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (
                     row.ivorn,
                     row.candidate_id,
                     row.revision,
+                    row.source_id,
                     row.kind,
                     row.level,
                     row.status,
@@ -184,6 +189,16 @@ class Archive:
     def latest(self, limit: int = 50) -> list[AlertRow]:
         cur = self.db.execute("SELECT * FROM alerts ORDER BY seq DESC LIMIT ?", (limit,))
         return [AlertRow(*r) for r in cur.fetchall()]
+
+    def recent_families(self, since_gps_ns: int) -> list[tuple[str, bytes]]:
+        """(family id, latest JSON of the source candidate) of alerts from ``since_gps_ns``."""
+        cur = self.db.execute(
+            "SELECT a.candidate_id, c.json FROM alerts a JOIN candidates c ON c.id = a.source_id "
+            "AND c.revision = a.revision WHERE a.kind != 'retraction' AND a.event_gps_ns >= ? "
+            "ORDER BY a.seq",
+            (since_gps_ns,),
+        )
+        return [(str(f), bytes(j)) for f, j in cur.fetchall()]
 
     def recent_sent(self, since_gps_ns: int) -> list[tuple[int, str]]:
         """(event GPS ns, level) of queued new/update alerts from ``since_gps_ns`` on, in order."""

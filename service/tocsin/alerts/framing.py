@@ -59,9 +59,7 @@ MAX_RESULT_CHARS: Final = 1000
 """A ``Result`` text we emit is cut to this many characters (our choice)."""
 
 # xs:dateTime without the year sign and year > 9999 forms, which never occur here.
-_DATETIME = re.compile(
-    r"(\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2})(\.\d+)?(Z|[+-]\d{2}:\d{2})?"
-)
+_DATETIME = re.compile(r"(\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2})(\.\d+)?(Z|[+-]\d{2}:\d{2})?")
 # Characters XML 1.0 cannot carry (§2.2 Char production).
 _NOT_XML_CHAR = re.compile("[^\x09\x0a\x0d\x20-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
 
@@ -84,9 +82,7 @@ def frame_length(header: bytes, *, max_bytes: int = DEFAULT_LIMITS.max_bytes) ->
         raise ValueError(f"a frame header is {FRAME_HEADER.size} bytes, got {len(header)}")
     (length,) = FRAME_HEADER.unpack(header)
     if length > max_bytes:
-        raise PacketRejected(
-            "too_large", f"frame announces {length} bytes; the cap is {max_bytes}"
-        )
+        raise PacketRejected("too_large", f"frame announces {length} bytes; the cap is {max_bytes}")
     return int(length)
 
 
@@ -167,9 +163,7 @@ class TransportMessage:
 
 def build_transport(msg: TransportMessage) -> bytes:
     """Serialise ``msg`` as the spec's samples do (``trn:`` prefix, UTF-8, declaration)."""
-    root = etree.Element(
-        f"{{{TRANSPORT_NS}}}Transport", nsmap={"trn": TRANSPORT_NS, "xsi": XSI_NS}
-    )
+    root = etree.Element(f"{{{TRANSPORT_NS}}}Transport", nsmap={"trn": TRANSPORT_NS, "xsi": XSI_NS})
     root.set("role", msg.role)
     root.set("version", msg.version)
     root.set(f"{{{XSI_NS}}}schemaLocation", TRANSPORT_SCHEMA_LOCATION)

@@ -85,7 +85,8 @@ class AlertMeta:
 
 
 def local_id(cand_id: str, kind: AlertKind, n: int = 0) -> str:
-    """The part after ``#``: the candidate id, ``-u<n>`` for its n-th update, ``-x`` retraction."""
+    """The part after ``#``: the family's first candidate id; ``-u<n>`` for the family's
+    n-th update; ``-x`` for its retraction."""
     if kind == "new":
         return cand_id
     if kind == "update":

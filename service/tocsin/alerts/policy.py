@@ -20,6 +20,7 @@ Pure and synchronous (the service, replay and the ``retract`` command share it):
 from __future__ import annotations
 
 import datetime as dt
+from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -40,13 +41,16 @@ from tocsin.errors import TocsinError
 from tocsin.gpstime import gps_ns_to_utc_iso
 from tocsin.model.alert_config import AlertConfig
 from tocsin.model.candidate import Candidate
-from tocsin.types import NS_PER_S
+from tocsin.types import NS_PER_S, GpsNs
 
 SINK_MQTT = "mqtt"
 SINK_DIR = "dir"
 VTP_PREFIX = "vtp:"
 BUCKET_MEMORY_S = 86_400
 """On restart the buckets are rebuilt from the archived alerts of the last day."""
+FAMILY_MEMORY_S = 600
+"""Hits of alerted coincidences are remembered this long (s of event time) to group
+other seeds of the same cluster into the same alert family."""
 
 
 class AlertError(TocsinError):
@@ -76,6 +80,31 @@ class TokenBucket:
             self.tokens -= 1.0
             return True
         return False
+
+
+def _hit_keys(cand: Candidate) -> list[tuple[str, int]]:
+    """(site, hit time ns) of a coincidence's hits; empty for an excess."""
+    if not cand.hit_times_ns or len(cand.hit_times_ns) != len(cand.sites):
+        return []
+    return [(s, int(t)) for s, t in zip(cand.sites, cand.hit_times_ns, strict=True)]
+
+
+def _hit_view(obj: dict[str, object]) -> Candidate:
+    """Enough of an archived candidate JSON for :func:`_hit_keys` and its time."""
+    sites = obj.get("sites")
+    hits = obj.get("hit_times_ns")
+    t = obj.get("time_gps_ns")
+    return Candidate(
+        trigger=str(obj.get("trigger", "")),
+        statistic=str(obj.get("statistic", "")),
+        time_gps_ns=GpsNs(int(t) if isinstance(t, int) else 0),
+        window_s=0.0,
+        sites=[str(x) for x in sites] if isinstance(sites, list) else [],
+        p_value=1.0,
+        far_per_year=0.0,
+        hit_times_ns=[GpsNs(int(x)) for x in hits] if isinstance(hits, list) else [],
+        id=str(obj.get("id", "x")),
+    )
 
 
 def _utc_now() -> dt.datetime:
@@ -108,6 +137,8 @@ class AlertDesk:
             lv: TokenBucket(float(cfg.burst), cfg.max_per_hour) for lv in ("internal", "public")
         }
         self.n_held = 0
+        self._by_hit: dict[tuple[str, int], str] = {}
+        self._hits_by_time: deque[tuple[int, list[tuple[str, int]]]] = deque()
         self._rebuild_buckets()
 
     def _rebuild_buckets(self) -> None:
@@ -115,6 +146,9 @@ class AlertDesk:
         if not rows or rows[0].event_gps_ns is None:
             return
         since = rows[0].event_gps_ns - BUCKET_MEMORY_S * NS_PER_S
+        for family, raw in self.archive.recent_families(since):
+            obj = orjson.loads(raw)
+            self._remember(family, _hit_view(obj))
         for t, level in self.archive.recent_sent(since):
             self.buckets["internal"].take(t)
             if level == "public":
@@ -139,32 +173,45 @@ class AlertDesk:
         return None
 
     def consider(self, cand: Candidate) -> AlertRow | None:
-        """Archive ``cand``; return the new alert row if it became (or updated) an alert."""
+        """Archive ``cand``; return the new alert row if it became (or updated) an alert.
+
+        Alerts come in *families*, one per physical cluster: a candidate that shares a
+        hit with an alerted coincidence (another seed of the same cluster, which the
+        engine keeps as a separate trial) or is a revision of an alerted candidate
+        joins that family. A family member alerts only as an ``update`` that beats the
+        family's best false alarm rate so far; otherwise it is archived, not sent.
+        """
         obj = cand.to_json_obj()
         self.archive.add_candidate(obj, orjson.dumps(obj))
         level = self.level_of(cand.far_per_year, cand.trigger)
+        family = self._family_of(cand)
         if level is None:
             return None
-        earlier = [a for a in self.archive.alerts_for(cand.id) if a.kind != "retraction"]
-        if any(a.kind == "retraction" for a in self.archive.alerts_for(cand.id)):
-            return None  # withdrawn by an operator: later revisions stay quiet
+        members = self.archive.alerts_for(family)
+        if any(a.kind == "retraction" for a in members):
+            return None  # withdrawn by an operator: the cluster stays quiet
         kind: AlertKind = "new"
         cites = None
         note = ""
-        if earlier:
-            if any(a.revision >= cand.revision for a in earlier):
+        if members:
+            best = min(a.far_per_year for a in members if a.far_per_year is not None)
+            if not cand.far_per_year < best:
                 return None
             kind = "update"
-            first = earlier[0]
+            first = members[0]
             cites = first.ivorn
             if first.level == "public":
                 level = "public"
-            note = (
-                f"Candidate revised to revision {cand.revision}: {len(cand.sites)} sites, "
-                f"false alarm rate {cand.far_per_year:.3g} per year "
-                f"(was {first.far_per_year:.3g})."
+            what = (
+                f"revision {cand.revision}"
+                if cand.id == family
+                else f"candidate {cand.id} of the same cluster"
             )
-        ivorn = f"{self.cfg.stream_ivorn}#{local_id(cand.id, kind, cand.revision)}"
+            note = (
+                f"Superseded by {what}: {len(cand.sites)} sites, false alarm rate "
+                f"{cand.far_per_year:.3g} per year (was {best:.3g})."
+            )
+        ivorn = f"{self.cfg.stream_ivorn}#{local_id(family, kind, len(members))}"
         t_ns, _, _ = event_time(cand)
         held = not self._take(level, int(t_ns))
         created = self.now()
@@ -174,8 +221,9 @@ class AlertDesk:
         row = AlertRow(
             seq=0,
             ivorn=ivorn,
-            candidate_id=cand.id,
+            candidate_id=family,
             revision=cand.revision,
+            source_id=cand.id,
             kind=kind,
             level=level,
             status="held" if held else "queued",
@@ -190,9 +238,34 @@ class AlertDesk:
         sinks = [] if held else self.sinks_for(level)
         if not self.archive.insert_alert(row, sinks, _iso(created)):
             return None
+        self._remember(family, cand)
         if held:
             self.n_held += 1
         return self.archive.get(ivorn)
+
+    # -- families --------------------------------------------------------------
+    def _family_of(self, cand: Candidate) -> str:
+        if self.archive.alerts_for(cand.id):
+            return cand.id
+        for key in _hit_keys(cand):
+            fam = self._by_hit.get(key)
+            if fam is not None:
+                return fam
+        return cand.id
+
+    def _remember(self, family: str, cand: Candidate) -> None:
+        keys = _hit_keys(cand)
+        if not keys:
+            return
+        t = int(cand.time_gps_ns)
+        for k in keys:
+            self._by_hit[k] = family
+        self._hits_by_time.append((t, keys))
+        horizon = t - FAMILY_MEMORY_S * NS_PER_S
+        while self._hits_by_time and self._hits_by_time[0][0] < horizon:
+            _, old = self._hits_by_time.popleft()
+            for k in old:
+                self._by_hit.pop(k, None)
 
     def _take(self, level: str, t_ns: int) -> bool:
         ok = self.buckets["internal"].take(t_ns)
@@ -243,6 +316,7 @@ class AlertDesk:
             ivorn=new_ivorn,
             candidate_id=orig.candidate_id,
             revision=orig.revision,
+            source_id=orig.source_id,
             kind="retraction",
             level=level,
             status="queued",
