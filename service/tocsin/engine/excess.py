@@ -25,9 +25,12 @@ second (at scale ``w_s`` there are ``n_s`` tests per window, so
 changes as sites come and go, so ``R`` is taken from the window under test:
 its own test count at its own scale, and for each other scale the number of
 tests the same expectations would allow there (a site's expected count scaled
-by the ratio of window lengths against ``min_expected``). Counting decisions
-with ``far <= F`` over a live time T then gives F T on average: the calibration
-test checks exactly that.
+by the ratio of window lengths against ``min_expected``). ``R`` is per second
+of network live time: divided by the window's live fraction (that of its most
+live used site). Counting decisions with ``far <= F`` over a network live time
+T then gives F T on average: the calibration tests (``tests/test_calibration.py``,
+and ``tests/test_partial_live.py`` for networks that start and stop inside
+bins) check exactly that.
 
 Results do not depend on how ``process`` calls are batched: each scale keeps
 its own progress pointer, windows are grouped on a fixed grid, and every group's
@@ -267,7 +270,13 @@ class ExcessTrigger:
                 scaled = pred.expected if wj == w else pred.expected * (wj / w)
                 n = n + (used & (scaled >= self.cfg.min_expected)).sum(axis=0)
             rate += n / (wj * bin_s)
-        return rate
+        # Per second of network live time: a window in which the sites are live for
+        # only a fraction of its length spends only that much of the live time the
+        # false alarm rate is counted against (the largest fraction of one used
+        # site: exact when sites share their dead time, conservative otherwise).
+        live = np.where(used, pred.on_live_s, 0.0).max(axis=0) / (w * bin_s)
+        out: F64Array = np.where(live > 0.0, rate / np.where(live > 0.0, live, 1.0), rate)
+        return out
 
     def _evaluate_group(
         self, store: BinStore, si: int, klo: int, khi: int, anchor: int, far_max: float

@@ -24,6 +24,12 @@ tail where it matters)
 
     E_m = sum_{pairs, solutions} P(PB >= m - 3) / C(m - 1, 2),   P(M >= m) = 1 - exp(-E_m).
 
+Dead time: a neighbour site dead for part of its slot has its hit uniform over
+the live part, so ``|G_l|`` is then the slot's live length (the narrow slot's
+live part is at most ``2 δ_l``, so ``ρ_l`` stays an upper bound). The closeness
+``u_l`` below assumes the narrow slot (nanoseconds to microseconds) fully live;
+a live-interval edge inside it is a chance of ~1e-6 per hit and is ignored.
+
 Within a multiplicity, closer fits rank higher: ``u_l = |residual_l| / δ_l`` is
 uniform under the null, and ``p = P(M >= m+1) + P(M = m) P(Gamma(m-3) >= -sum ln u)``.
 Calibration is checked against simulated background (``tests/test_calibration.py``).
@@ -39,6 +45,7 @@ from numpy.typing import NDArray
 from tocsin.engine.coincidence import SeedResult, SlotGeometry
 from tocsin.engine.direction import seed_baselines, solve_triples
 from tocsin.engine.geometry import ellipsoid_up
+from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import (
     fisher_combined_sf,
@@ -83,28 +90,27 @@ class FrontSearch:
         max_sig = float(self.sigma[el].max()) if el.any() else 0.0
         self._tol_base = cfg.clock_sigmas * max_sig
 
-    def trial_rate_hz(self, rates_per_ns: F64Array, live_frac: F64Array) -> float:
-        """Front seed evaluations per second that can yield a front (added to the
-        coincidence FAR multiplier).
+    def seed_weight(self, rates_per_ns: F64Array) -> F64Array:
+        """Front evaluations per seed hit that can yield a front, per seed site (added
+        to the coincidence FAR multiplier through ``Tables.seed_weight``).
 
         The front p-value is conditional on the seed's neighbour hits and is 1
         when fewer than three other sites are in its slots, so only seeds with
-        three or more count as trials: per front scale, seed rate times the
-        Poisson-binomial probability of >= 3 occupied slots.
+        three or more count as trials: per front scale, the Poisson-binomial
+        probability of >= 3 occupied slots, with every counted site (rate > 0)
+        live over its whole slot (an upper bound at the edges of live time).
         """
+        out = np.zeros(self.n_sites)
         use = self.eligible & (rates_per_ns > 0)
         if use.sum() < 4:
-            return 0.0
+            return out
         lam = np.where(use, rates_per_ns, 0.0)
-        f = np.where(use, np.clip(live_frac, 0.0, 1.0), 0.0)
-        total = 0.0
         for k in range(self.scales_ns.size):
             width = self.hi[k] - self.lo
-            q = f[None, :] * -np.expm1(-lam[None, :] * width)
+            q = -np.expm1(-lam[None, :] * width)
             q = np.where(use[None, :] & ~np.eye(self.n_sites, dtype=bool), q, 0.0)[use]
-            p3 = poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
-            total += float(np.sum(lam[use] * f[use] * p3))
-        return total * 1e9
+            out[use] += poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
+        return out
 
     def evaluate(
         self,
@@ -115,10 +121,13 @@ class FrontSearch:
         rates_per_ns: F64Array,
         *,
         p_max: float,
+        clock: LiveClock | None = None,
     ) -> list[SeedResult]:
         """Evaluate seeds ``t[seed_lo:seed_hi]`` at every front scale (one result per
         scale); keep seeds with p <= p_max and m >= 4. Triples are solved once, at
-        the widest scale's slots, and re-used for the narrower ones."""
+        the widest scale's slots, and re-used for the narrower ones. ``clock`` gives
+        the sites' live time: a neighbour hit is uniform over the live part of its
+        slot, so ``rho`` uses that length (None: every site live throughout)."""
         n_f = self.scales_ns.size
         k_sig = self.cfg.clock_sigmas
         use = self.eligible & (rates_per_ns > 0)
@@ -170,6 +179,14 @@ class FrontSearch:
         nsite[gg, rank] = sn
         dly[gg, rank] = d
         seed_site = s_seed_all[cand].astype(np.int64)
+        # neighbour hits of sites dead for part of the search stretch: their slots'
+        # live length replaces the width (rho is then an upper bound, see module doc)
+        pr_row = pr_col = empty
+        if clock is not None:
+            part = clock.partial_sites(
+                int(t_seed[0]) - self.back_ns, int(t_seed[-1]) + self.ahead_ns[wide] + 1
+            )
+            pr_row, pr_col = np.nonzero(valid & part[nsite])
         b_l = seed_baselines(self.ecef, seed_site, nsite)  # (n_c, kk, 3)
         # all pairs (a, b) of neighbour hits at distinct sites
         ia, ib = np.triu_indices(kk, 1)
@@ -242,6 +259,12 @@ class FrontSearch:
             hi_f = self.hi[f][seed_site[:, None], nsite]
             in_slot = valid & (dly <= hi_f)
             width = np.where(valid, hi_f - self.lo[seed_site[:, None], nsite], 1.0)
+            if pr_row.size and clock is not None:
+                t_c = t_seed[cand][pr_row]
+                slot0 = t_c + self.lo[seed_site[pr_row], nsite[pr_row, pr_col]].astype(np.int64)
+                slot1 = t_c + hi_f[pr_row, pr_col].astype(np.int64)
+                live = clock.live_ns(nsite[pr_row, pr_col], slot0, slot1)
+                width[pr_row, pr_col] = np.maximum(live, 1).astype(np.float64)
             out.append(self._at_scale(f, ts, in_slot, width, trip_ok, p_max))
         return out
 
