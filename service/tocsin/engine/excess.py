@@ -45,7 +45,7 @@ from dataclasses import dataclass, field, fields
 import numpy as np
 
 from tocsin.engine.exposure import BinStore
-from tocsin.engine.rates import Prediction, equivalent_onoff, predict_counts
+from tocsin.engine.rates import CumulativeSums, Prediction, equivalent_onoff, predict_counts
 from tocsin.engine.stats import (
     hash_uniform,
     li_ma_significance,
@@ -171,6 +171,8 @@ class ExcessTrigger:
         gb = max(self.scales_bins, default=1) if group_bins is None else group_bins
         self._group = [max(1, gb // w) for w in self.scales_bins]
         self._next: list[int | None] = [None] * len(self.scales_bins)
+        self._sums: dict[int, CumulativeSums] = {}
+        self._sums_store: BinStore | None = None
         self.skipped_windows = 0
         """Windows never evaluated because their background had left the ring."""
 
@@ -192,6 +194,7 @@ class ExcessTrigger:
                 f"checkpoint has {len(nxt)} scales, trigger has {len(self.scales_bins)}"
             )
         self._next = [None if v is None else int(v) for v in nxt]
+        self._sums.clear()
 
     # ------------------------------------------------------------------ public
 
@@ -258,6 +261,29 @@ class ExcessTrigger:
 
     # ------------------------------------------------------------------ internals
 
+    def _columns(self, si: int, anchor: int, klo: int, khi: int) -> I64Array:
+        """Bins at which windows ``[klo, khi)`` of scale ``si`` read running sums."""
+        w = self.scales_bins[si]
+        ks = np.arange(klo, khi, dtype=np.int64)
+        start = ks * w - self.guard_bins
+        out: I64Array = np.unique(
+            np.concatenate([start - self.background_bins, start, ks * w, (ks + 1) * w])
+        )
+        return out
+
+    def _sums_for(self, store: BinStore, si: int, anchor: int) -> CumulativeSums:
+        """The running sums of scale ``si``'s current group (origin ``anchor``): kept
+        between calls, so each bin is summed once per group instead of once per call."""
+        cur = self._sums.get(si)
+        if cur is None or cur.origin != anchor or self._sums_store is not store:
+            w = self.scales_bins[si]
+            g0 = (anchor + self.guard_bins + self.background_bins) // w
+            cols = self._columns(si, anchor, g0, g0 + self._group[si]) - anchor
+            cur = CumulativeSums(self.n_sites, anchor, cols)
+            self._sums[si] = cur
+            self._sums_store = store
+        return cur
+
     def _tests_per_s(self, si: int, pred: Prediction, net_ok: BoolArray) -> F64Array:
         """R for each window of the group: tests per second over all scales (1/s)."""
         w = self.scales_bins[si]
@@ -283,6 +309,7 @@ class ExcessTrigger:
     ) -> tuple[ExcessTests, list[tuple[tuple[int, int, int], Candidate]]]:
         w = self.scales_bins[si]
         ks = np.arange(klo, khi, dtype=np.int64)
+        sums = self._sums_for(store, si, anchor)
         pred = predict_counts(
             store,
             ks * w,
@@ -291,7 +318,14 @@ class ExcessTrigger:
             guard_bins=self.guard_bins,
             min_live_fraction=self.min_live_fraction,
             origin_bin=anchor,
+            sums=sums,
         )
+        # only the columns of the group's later windows are kept
+        g_end = (anchor + self.guard_bins + self.background_bins) // w + self._group[si]
+        if khi < g_end:
+            sums.keep_only(self._columns(si, anchor, khi, g_end) - anchor)
+        else:
+            del self._sums[si]
         used = pred.used
         if self.cfg.network:
             net_ok = (pred.net_expected > 0.0) & (pred.net_variance > 0.0)
