@@ -137,6 +137,10 @@ class SlotGeometry:
         base_hi = np.ceil(light + clock_sigmas * comb)
         self.hi = base_hi[None, :, :] + self.scales_ns[:, None, None]  # (S, N, N)
         self.width = self.hi - self.lo[None, :, :]
+        # flat copies, indexed by seed site * N + site (one index for several tables)
+        self.lo_flat = self.lo.reshape(-1)
+        self.hi_flat = [h.reshape(-1) for h in self.hi]
+        self.width_flat = [x.reshape(-1) for x in self.width]
         self.back_ns = int(-self.lo.min())
         self.ahead_ns = [int(h.max()) for h in self.hi]
 
@@ -286,23 +290,25 @@ class CoincidenceTrigger:
         s_seed = site[seed_pos][pr.seed]
         s_nb = s_sub[pr.nb]
         d = (t_sub[pr.nb] - t[seed_pos][pr.seed]).astype(np.float64)
-        lo = self.geom.lo[s_seed, s_nb]
-        hi = self.geom.hi[k][s_seed, s_nb]
+        pair = s_seed.astype(np.int64) * self.n_sites + s_nb  # flat (seed site, site) index
+        lo = self.geom.lo_flat.take(pair)
+        hi = self.geom.hi_flat[k].take(pair)
         # Only the earliest hit of a site in the slot counts: a hit whose site's
         # previous hit is already inside the slot is not the earliest.
         prev = _previous_same_site(t_sub, s_sub)
-        keep = (st.q[s_seed, s_nb] > 0) & (d >= lo) & (d <= hi)
+        keep = (d <= hi) & (d >= lo) & (st.q.reshape(-1).take(pair) > 0)
         keep &= prev[pr.nb] - t[seed_pos][pr.seed] < lo
-        g_seed, g_nb, s_seed, s_nb, d, lo = (
+        g_seed, g_nb, s_seed, s_nb, d, lo, pair = (
             pr.seed[keep],
             pr.nb[keep],
             s_seed[keep],
             s_nb[keep],
             d[keep],
             lo[keep],
+            pair[keep],
         )
         lam = tables.rates_per_ns[s_nb]
-        w = self.geom.width[k][s_seed, s_nb]
+        w = self.geom.width_flat[k].take(pair)
         off = d - lo  # offset into the slot (ns); exact in float64
         if clock is not None:
             part = clock.partial_sites(
