@@ -398,9 +398,9 @@ def main(argv: list[str] | None = None) -> int:
     t_w = time.perf_counter()
     run_engine(engine, warm_blocks)
     t_w = time.perf_counter() - t_w
-    memo = {id(registry): registry}
-    replay_engine = None if a.no_replay else copy.deepcopy(engine, memo)
-    profile_engine = copy.deepcopy(engine, memo) if a.profile else None
+    # one memo per copy (a shared memo would hand back the first copy again)
+    replay_engine = None if a.no_replay else copy.deepcopy(engine, {id(registry): registry})
+    profile_engine = copy.deepcopy(engine, {id(registry): registry}) if a.profile else None
     print(f"setup {time.perf_counter() - t_setup - t_w:.1f} s, warm-up {t_w:.1f} s (untimed)")
 
     # ---- 1. engine ----------------------------------------------------------------

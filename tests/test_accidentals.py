@@ -48,7 +48,7 @@ def _count(rates_hz: list[float], fold: int, seed: int) -> tuple[int, float]:
     o = np.argsort(t, kind="stable")
     t, s = t[o].astype(np.int64), s[o]
     lam = np.asarray(rates_hz)
-    tab = trig.tables(lam, np.ones(len(rates_hz)), np.ones(len(rates_hz), dtype=bool))
+    tab = trig.tables(lam, np.ones(len(rates_hz), dtype=bool), np.ones(len(rates_hz), dtype=bool))
     # seeds whose forward slot lies wholly inside the span
     i1 = int(np.searchsorted(t, span_ns - int(2 * TAU_S * 1e9)))
     res = trig.evaluate(t, s, 0, i1, tab, 0, p_max=1.0)

@@ -11,16 +11,30 @@ and clocks can shift either hit. Forward-only slots mean each chance cluster is
 counted once, from its earliest hit.
 
 Statistic ``sites`` (every scale). Under the null (independent Poisson sites with
-rates lambda_j from :mod:`tocsin.engine.rates`) site ``j`` occupies its slot with
-probability ``q_sj = f_j (1 - exp(-lambda_j |slot|))`` (``f_j`` its live fraction),
-so the number of other sites K is Poisson-binomial(q). Ties in K are broken by
-how early in its slot each site fired: for the first hit at offset ``x`` into a
-slot of width ``w``, ``u = (1 - e^{-lambda x}) / (1 - e^{-lambda w})`` is uniform
-under the null, and ``-sum ln u`` is Gamma(K, 1) (Fisher's method). The p-value
+rates lambda_j from :mod:`tocsin.engine.rates`) a site ``j`` live over the whole
+slot occupies it with probability ``q_sj = 1 - exp(-lambda_j |slot|)``, so the
+number of other sites K is Poisson-binomial(q). Ties in K are broken by how early
+in its slot each site fired: for the first hit at offset ``x`` into a slot of
+width ``w``, ``u = (1 - e^{-lambda x}) / (1 - e^{-lambda w})`` is uniform under
+the null, and ``-sum ln u`` is Gamma(K, 1) (Fisher's method). The p-value
 
     p = P(K > k) + P(K = k) * P(Gamma(k) >= -sum ln u)
 
 is then exactly uniform under the null (a lexicographic ordering on (K, compactness)).
+
+Dead time. Which sites count is decided per exposure bin from live time alone
+(never from hits, so any such rule keeps the null): a site counts for the seeds
+of a bin when it is live somewhere in that bin, and then always with the
+occupancy of a *fully live* slot. The offset ``x`` is measured on the site's
+live clock (:mod:`tocsin.engine.livetime`). A site dead for part of a slot is
+then a fully live site whose hits in the dead part were thrown away: its true
+probability of every (occupied, offset) outcome is at most the one the tables
+assume, so P(p <= x) <= x -- exact for fully live slots, conservative at the
+edges of live intervals. (Scaling ``q`` by the bin's live fraction instead, as
+an earlier version did, is wrong: a seed exists only where its site is live,
+and when many sites start or stop together the others are live at the seed's
+time far more often than their bin-average fraction says -- hundreds of false
+candidates at ``far ~ 1e-8`` per year in ``tests/test_partial_live.py``.)
 
 Statistic ``front`` (short scales, sites with good clocks): see :mod:`tocsin.engine.front`.
 
@@ -30,6 +44,11 @@ x * R, where R sums the seed rate of every evaluated (scale, statistic, seed
 site). So ``far = p * R``, whatever the correlations between scales. A scale
 that would only repeat a smaller one for a seed site (expected neighbour count
 changed by less than ``redundancy_ratio``) is not evaluated and not counted.
+Rates are per second of *network live time*: in a bin where the counted sites
+are live for fractions ``f_s``, R is ``sum_s lambda_s f_s (trials of s) / max_s f_s``
+(:meth:`Tables.trial_rates_hz`). The expected false alarms of the bin are then F
+times its network live time, exactly when the sites share their dead time and
+fewer (the max is below the union of live time) when they do not.
 """
 
 from __future__ import annotations
@@ -40,6 +59,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
+from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_top
 from tocsin.model.config import CoincidenceConfig
@@ -63,12 +83,27 @@ class ScaleTables:
 
 @dataclass(frozen=True, slots=True)
 class Tables:
-    """Everything the null hypothesis needs for a stretch of constant rates."""
+    """Everything the null hypothesis needs for a stretch of constant rates and
+    constant set of counted (live) sites."""
 
     rates_per_ns: F64Array
+    """(N,) background rate per ns of each counted site, 0 for the others."""
     scales: tuple[ScaleTables, ...]
+    seed_weight: F64Array
+    """(N,) evaluations each seed hit of a site makes, all scales and statistics
+    (front seeds weighted by their chance of being testable)."""
     trial_rate_hz: float
-    """Seed evaluations per second, all scales and statistics (the FAR multiplier)."""
+    """Seed evaluations per second with every counted site live all the time."""
+
+    def trial_rates_hz(self, live_frac: F64Array) -> F64Array:
+        """Evaluations per second of network live time (the FAR multiplier, Hz) in
+        bins where site ``s`` is live for the fraction ``live_frac[s, j]`` of bin j
+        (shape (N, bins); one value per bin)."""
+        f = np.where(self.rates_per_ns[:, None] > 0, np.clip(live_frac, 0.0, 1.0), 0.0)
+        f_net = f.max(axis=0) if f.shape[0] else np.zeros(f.shape[1])
+        num = (self.rates_per_ns * self.seed_weight) @ f * 1e9
+        out: F64Array = np.where(f_net > 0.0, num / np.where(f_net > 0.0, f_net, 1.0), 0.0)
+        return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -102,6 +137,10 @@ class SlotGeometry:
         base_hi = np.ceil(light + clock_sigmas * comb)
         self.hi = base_hi[None, :, :] + self.scales_ns[:, None, None]  # (S, N, N)
         self.width = self.hi - self.lo[None, :, :]
+        # flat copies, indexed by seed site * N + site (one index for several tables)
+        self.lo_flat = self.lo.reshape(-1)
+        self.hi_flat = [h.reshape(-1) for h in self.hi]
+        self.width_flat = [x.reshape(-1) for x in self.width]
         self.back_ns = int(-self.lo.min())
         self.ahead_ns = [int(h.max()) for h in self.hi]
 
@@ -158,7 +197,8 @@ def _previous_same_site(t: I64Array, site: I32Array) -> I64Array:
 
 class CoincidenceTrigger:
     """The ``sites`` statistic at every scale; the ``front`` statistic is added by
-    :class:`tocsin.engine.front.FrontSearch` through :meth:`extra_trial_rate`."""
+    :class:`tocsin.engine.front.FrontSearch`, whose trials enter through the
+    ``extra_seed_weight`` of :meth:`tables`."""
 
     def __init__(self, registry: SiteRegistry, cfg: CoincidenceConfig) -> None:
         self.cfg = cfg
@@ -172,23 +212,27 @@ class CoincidenceTrigger:
     def tables(
         self,
         rates_hz: F64Array,
-        live_frac: F64Array,
+        live: BoolArray | F64Array,
         ok: BoolArray,
         *,
-        extra_trial_rate_hz: float = 0.0,
+        extra_seed_weight: F64Array | None = None,
     ) -> Tables:
-        """Build the null tables for per-site ``rates_hz``, live fractions and usable mask."""
+        """Build the null tables for per-site ``rates_hz`` (Hz), the sites counted
+        (``live``: live somewhere in the bin; nonzero = yes) and the usable mask ``ok``.
+        ``extra_seed_weight`` (N,): further evaluations per seed hit (the front's)."""
         n = self.n_sites
+        ok = np.asarray(ok, dtype=bool) & (np.asarray(live) != 0)
         lam = np.where(ok, rates_hz, 0.0) * 1e-9  # per ns
-        f = np.where(ok, np.clip(live_frac, 0.0, 1.0), 0.0)
+        weight: F64Array = (
+            np.zeros(n) if extra_seed_weight is None else extra_seed_weight.astype(np.float64)
+        )
         not_self = ~np.eye(n, dtype=bool)
         scales: list[ScaleTables] = []
         prev_e = np.full(n, np.nan)
-        trial = extra_trial_rate_hz
         for k in range(self.geom.scales_ns.size):
             occ = -np.expm1(-lam[None, :] * self.geom.width[k])
             allowed = not_self & (occ <= self.cfg.occupancy_cap) & ok[None, :] & ok[:, None]
-            q = np.where(allowed, f[None, :] * occ, 0.0)
+            q = np.where(allowed, occ, 0.0)
             e = q.sum(axis=1)
             ratio = self.cfg.redundancy_ratio
             fresh = np.isnan(prev_e) | (e >= ratio * prev_e) | (e * ratio <= prev_e)
@@ -204,8 +248,9 @@ class CoincidenceTrigger:
             prev_e = np.where(active, e, prev_e)
             tail_gt, point = _null_tables(q, active, e)
             scales.append(ScaleTables(q, active, tail_gt, point))
-            trial += float(np.sum(lam[active] * f[active])) * 1e9
-        return Tables(lam, tuple(scales), trial)
+            weight = weight + active.astype(np.float64)
+        weight = np.where(lam > 0, weight, 0.0)
+        return Tables(lam, tuple(scales), weight, float(np.dot(lam, weight)) * 1e9)
 
     def evaluate(
         self,
@@ -217,10 +262,13 @@ class CoincidenceTrigger:
         scale_index: int,
         *,
         p_max: float,
+        clock: LiveClock | None = None,
     ) -> SeedResult:
         """Evaluate seeds ``t[seed_lo:seed_hi]`` at one scale; keep those with p <= p_max
         and multiplicity >= ``min_multiplicity``. ``t`` must hold every hit within the
-        slots of those seeds."""
+        slots of those seeds. ``clock`` gives the sites' live time (offsets in slots
+        with dead time are measured on the live clock); None: every site is live
+        throughout."""
         st = tables.scales[scale_index]
         k = scale_index
         seed_pos = np.arange(seed_lo, seed_hi, dtype=np.int64)
@@ -242,24 +290,37 @@ class CoincidenceTrigger:
         s_seed = site[seed_pos][pr.seed]
         s_nb = s_sub[pr.nb]
         d = (t_sub[pr.nb] - t[seed_pos][pr.seed]).astype(np.float64)
-        lo = self.geom.lo[s_seed, s_nb]
-        hi = self.geom.hi[k][s_seed, s_nb]
+        pair = s_seed.astype(np.int64) * self.n_sites + s_nb  # flat (seed site, site) index
+        lo = self.geom.lo_flat.take(pair)
+        hi = self.geom.hi_flat[k].take(pair)
         # Only the earliest hit of a site in the slot counts: a hit whose site's
         # previous hit is already inside the slot is not the earliest.
         prev = _previous_same_site(t_sub, s_sub)
-        keep = (st.q[s_seed, s_nb] > 0) & (d >= lo) & (d <= hi)
+        keep = (d <= hi) & (d >= lo) & (st.q.reshape(-1).take(pair) > 0)
         keep &= prev[pr.nb] - t[seed_pos][pr.seed] < lo
-        g_seed, g_nb, s_seed, s_nb, d, lo = (
+        g_seed, g_nb, s_seed, s_nb, d, lo, pair = (
             pr.seed[keep],
             pr.nb[keep],
             s_seed[keep],
             s_nb[keep],
             d[keep],
             lo[keep],
+            pair[keep],
         )
         lam = tables.rates_per_ns[s_nb]
-        w = self.geom.width[k][s_seed, s_nb]
-        u = -np.expm1(-lam * (d - lo)) / -np.expm1(-lam * w)
+        w = self.geom.width_flat[k].take(pair)
+        off = d - lo  # offset into the slot (ns); exact in float64
+        if clock is not None:
+            part = clock.partial_sites(
+                int(t[seed_pos[0]]) - self.geom.back_ns,
+                int(t[seed_pos[-1]]) + self.geom.ahead_ns[k] + 1,
+            )
+            pix = np.flatnonzero(part[s_nb])
+            if pix.size:  # on the live clock where the site was dead for a while
+                slot0 = t[seed_pos][g_seed[pix]] + lo[pix].astype(np.int64)
+                live = clock.live_ns(s_nb[pix].astype(np.int64), slot0, t_sub[g_nb[pix]])
+                off[pix] = live
+        u = -np.expm1(-lam * off) / -np.expm1(-lam * w)
         log_u = np.log(np.clip(u, 1e-300, 1.0))
         n_seed = seed_pos.size
         kk = np.bincount(g_seed, minlength=n_seed)

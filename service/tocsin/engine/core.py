@@ -19,8 +19,9 @@ from tocsin.engine.direction import fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
 from tocsin.engine.exposure import BinStore
 from tocsin.engine.front import FrontSearch
+from tocsin.engine.livetime import LiveClock, LiveIntervals
 from tocsin.engine.merge import Decision, Merger
-from tocsin.engine.rates import background_rates
+from tocsin.engine.rates import RateEstimate, background_rates
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
@@ -90,6 +91,9 @@ class Engine:
         self._s: I32Array = np.zeros(0, dtype=np.int32)
         self._prog: list[GpsNs | None] = [None] * len(self._evals)
         self._tables: dict[tuple[int, bytes], Tables] = {}
+        self._bin_tables: dict[int, Tables] = {}
+        self._estimates: dict[int, RateEstimate] = {}
+        self.live_intervals = LiveIntervals(n)
         horizon = 2 * self.coinc.max_ahead_ns + 2 * excess_bins * self.bin_ns + 2 * self.bin_ns
         self.merger = Merger(horizon_ns=horizon)
         self.counters = EngineCounters()
@@ -118,6 +122,7 @@ class Engine:
         c.blocks += 1
         c.hits += block.n_hits
         c.live_site_ns += int(np.sum(block.live_end - block.live_start))
+        self.live_intervals.add(block.live_site, block.live_start, block.live_end)
         if block.t.size:
             self._t = np.concatenate([self._t, block.t])
             self._s = np.concatenate([self._s, block.site])
@@ -127,32 +132,49 @@ class Engine:
         return self.merger.add(decisions)
 
     # ------------------------------------------------------------------
-    def _tables_for_bin(self, b: int) -> Tables:
-        epoch = b // self.update_bins
-        live = self.store.live_ns(b, b + 1)[:, 0] / self.bin_ns
-        key = (epoch, np.round(live, 2).tobytes())
-        tab = self._tables.get(key)
-        if tab is None:
-            end_bin = epoch * self.update_bins
+    def _estimate(self, epoch: int) -> RateEstimate:
+        """Background rates of a rate epoch (cached; the bins it reads are final)."""
+        est = self._estimates.get(epoch)
+        if est is None:
             est = background_rates(
                 self.store,
-                end_bin,
+                epoch * self.update_bins,
                 background_bins=self.bg_bins,
                 guard_bins=0,
                 min_live_fraction=self.cfg.rate.min_live_s / self.cfg.rate.background_s,
             )
-            lf = np.round(live, 2)
             self.last_rates_hz = np.where(est.ok, est.rate_hz, 0.0)
-            extra = self.front.trial_rate_hz(np.where(est.ok, est.rate_hz, 0.0) * 1e-9, lf)
-            tab = self.coinc.tables(est.rate_hz, lf, est.ok, extra_trial_rate_hz=extra)
+            if len(self._estimates) > 8:
+                self._estimates.clear()
+            self._estimates[epoch] = est
+        return est
+
+    def _tables_for_bin(self, b: int) -> Tables:
+        """Null tables for the seeds of bin ``b``: its epoch's rates, and as counted
+        sites those usable and live somewhere in the bin (see coincidence.py)."""
+        tab = self._bin_tables.get(b)
+        if tab is not None:
+            return tab
+        epoch = b // self.update_bins
+        est = self._estimate(epoch)
+        counted = est.ok & (self.store.live_ns(b, b + 1)[:, 0] > 0)
+        key = (epoch, np.packbits(counted).tobytes())
+        tab = self._tables.get(key)
+        if tab is None:
+            rates = np.where(counted, est.rate_hz, 0.0)
+            extra = self.front.seed_weight(rates * 1e-9)
+            tab = self.coinc.tables(est.rate_hz, counted, est.ok, extra_seed_weight=extra)
             if len(self._tables) > 64:
                 self._tables.clear()
             self._tables[key] = tab
+        self._bin_tables[b] = tab
         return tab
 
     def _coincidences(self, t_end: GpsNs) -> list[Decision]:
         out: list[Decision] = []
         done_ns = (t_end // self.bin_ns) * self.bin_ns
+        self._bin_tables = {}
+        clock = LiveClock(self.store, self.live_intervals)
         # The first rate epoch needs some history; sites without enough live time
         # in their background stretch are left out by background_rates (``ok``).
         first_ok_bin = -(-((self._first_bin or 0) + 1) // self.update_bins) * self.update_bins
@@ -182,38 +204,50 @@ class Engine:
                 hi_t = min(limit, b_end * self.bin_ns)
                 i0 = int(np.searchsorted(self._t, lo_t, side="left"))
                 i1 = int(np.searchsorted(self._t, hi_t, side="left"))
-                if i1 > i0 and tab.trial_rate_hz > 0:
+                # FAR multiplier per bin: evaluations per second of network live time
+                trial = tab.trial_rates_hz(self.store.live_ns(b, b_end) / self.bin_ns)
+                if i1 > i0 and trial.max() > 0:
                     self.counters.seeds_evaluated += i1 - i0
-                    p_max = self.far_threshold / (tab.trial_rate_hz * SECONDS_PER_YEAR)
+                    # loosest bound of the stretch; each seed is then held to its own bin's
+                    p_max = self.far_threshold / (trial[trial > 0].min() * SECONDS_PER_YEAR)
+                    rates = (b, trial)
                     if stat == "sites":
-                        res = self.coinc.evaluate(self._t, self._s, i0, i1, tab, k, p_max=p_max)
-                        out += self._coinc_decisions(stat, res, tab, w_s, ahead)
+                        res = self.coinc.evaluate(
+                            self._t, self._s, i0, i1, tab, k, p_max=p_max, clock=clock
+                        )
+                        out += self._coinc_decisions(stat, res, rates, w_s, ahead)
                     else:
                         fronts = self.front.evaluate(
-                            self._t, self._s, i0, i1, tab.rates_per_ns, p_max=p_max
+                            self._t, self._s, i0, i1, tab.rates_per_ns, p_max=p_max, clock=clock
                         )
                         for fr in fronts:
                             w_f = self.cfg.coincidence.front_scales_s[fr.scale_index]
-                            out += self._coinc_decisions(stat, fr, tab, w_f, ahead)
+                            out += self._coinc_decisions(stat, fr, rates, w_f, ahead)
                 b = b_end
             self._prog[e] = limit
         return out
 
     def _coinc_decisions(
-        self, stat: str, res: SeedResult, tab: Tables, w_s: float, ahead: int
+        self, stat: str, res: SeedResult, rates: tuple[int, F64Array], w_s: float, ahead: int
     ) -> list[Decision]:
+        """Candidates of the seeds whose FAR (their bin's trial rate, ``rates`` =
+        (first bin, Hz per bin)) is within the threshold."""
         out: list[Decision] = []
         ids = self.registry.ids
+        b0, trial = rates
         for g in range(res.seed_idx.size):
             si = int(res.seed_idx[g])
+            t_seed = int(self._t[si])
+            trial_hz = float(trial[t_seed // self.bin_ns - b0])
+            p = float(res.p[g])
+            far = p * trial_hz * SECONDS_PER_YEAR
+            if not far <= self.far_threshold:
+                continue
             nb = res.nb_idx[res.nb_seed == g]
             idx = np.concatenate([[si], nb]).astype(np.int64)
             idx = idx[np.argsort(self._t[idx], kind="stable")]
             t_hits = [int(x) for x in self._t[idx]]
             s_hits = [int(x) for x in self._s[idx]]
-            p = float(res.p[g])
-            far = p * tab.trial_rate_hz * SECONDS_PER_YEAR
-            t_seed = int(self._t[si])
             cand = Candidate(
                 trigger="coincidence",
                 statistic=stat,
@@ -224,7 +258,7 @@ class Engine:
                 far_per_year=far,
                 multiplicity=int(res.multiplicity[g]),
                 hit_times_ns=t_hits,
-                details={"trial_rate_hz": tab.trial_rate_hz},
+                details={"trial_rate_hz": trial_hz},
             )
             if far <= DIRECTION_MAX_FAR_PER_YEAR:
                 self._add_direction(cand, np.asarray(s_hits), self._t[idx])
@@ -271,9 +305,10 @@ class Engine:
 
     def _trim(self) -> None:
         progs = [p for p in self._prog if p is not None]
-        if not progs or self._t.size == 0:
+        if not progs:
             return
         keep_from = min(progs) - self.coinc.geom.back_ns - 1
+        self.live_intervals.trim(keep_from)
         cut = int(np.searchsorted(self._t, keep_from, side="left"))
         if cut > 0:
             self._t = self._t[cut:]

@@ -25,9 +25,12 @@ second (at scale ``w_s`` there are ``n_s`` tests per window, so
 changes as sites come and go, so ``R`` is taken from the window under test:
 its own test count at its own scale, and for each other scale the number of
 tests the same expectations would allow there (a site's expected count scaled
-by the ratio of window lengths against ``min_expected``). Counting decisions
-with ``far <= F`` over a live time T then gives F T on average: the calibration
-test checks exactly that.
+by the ratio of window lengths against ``min_expected``). ``R`` is per second
+of network live time: divided by the window's live fraction (that of its most
+live used site). Counting decisions with ``far <= F`` over a network live time
+T then gives F T on average: the calibration tests (``tests/test_calibration.py``,
+and ``tests/test_partial_live.py`` for networks that start and stop inside
+bins) check exactly that.
 
 Results do not depend on how ``process`` calls are batched: each scale keeps
 its own progress pointer, windows are grouped on a fixed grid, and every group's
@@ -42,7 +45,7 @@ from dataclasses import dataclass, field, fields
 import numpy as np
 
 from tocsin.engine.exposure import BinStore
-from tocsin.engine.rates import Prediction, equivalent_onoff, predict_counts
+from tocsin.engine.rates import CumulativeSums, Prediction, equivalent_onoff, predict_counts
 from tocsin.engine.stats import (
     hash_uniform,
     li_ma_significance,
@@ -168,6 +171,8 @@ class ExcessTrigger:
         gb = max(self.scales_bins, default=1) if group_bins is None else group_bins
         self._group = [max(1, gb // w) for w in self.scales_bins]
         self._next: list[int | None] = [None] * len(self.scales_bins)
+        self._sums: dict[int, CumulativeSums] = {}
+        self._sums_store: BinStore | None = None
         self.skipped_windows = 0
         """Windows never evaluated because their background had left the ring."""
 
@@ -189,6 +194,7 @@ class ExcessTrigger:
                 f"checkpoint has {len(nxt)} scales, trigger has {len(self.scales_bins)}"
             )
         self._next = [None if v is None else int(v) for v in nxt]
+        self._sums.clear()
 
     # ------------------------------------------------------------------ public
 
@@ -255,6 +261,29 @@ class ExcessTrigger:
 
     # ------------------------------------------------------------------ internals
 
+    def _columns(self, si: int, anchor: int, klo: int, khi: int) -> I64Array:
+        """Bins at which windows ``[klo, khi)`` of scale ``si`` read running sums."""
+        w = self.scales_bins[si]
+        ks = np.arange(klo, khi, dtype=np.int64)
+        start = ks * w - self.guard_bins
+        out: I64Array = np.unique(
+            np.concatenate([start - self.background_bins, start, ks * w, (ks + 1) * w])
+        )
+        return out
+
+    def _sums_for(self, store: BinStore, si: int, anchor: int) -> CumulativeSums:
+        """The running sums of scale ``si``'s current group (origin ``anchor``): kept
+        between calls, so each bin is summed once per group instead of once per call."""
+        cur = self._sums.get(si)
+        if cur is None or cur.origin != anchor or self._sums_store is not store:
+            w = self.scales_bins[si]
+            g0 = (anchor + self.guard_bins + self.background_bins) // w
+            cols = self._columns(si, anchor, g0, g0 + self._group[si]) - anchor
+            cur = CumulativeSums(self.n_sites, anchor, cols)
+            self._sums[si] = cur
+            self._sums_store = store
+        return cur
+
     def _tests_per_s(self, si: int, pred: Prediction, net_ok: BoolArray) -> F64Array:
         """R for each window of the group: tests per second over all scales (1/s)."""
         w = self.scales_bins[si]
@@ -267,13 +296,20 @@ class ExcessTrigger:
                 scaled = pred.expected if wj == w else pred.expected * (wj / w)
                 n = n + (used & (scaled >= self.cfg.min_expected)).sum(axis=0)
             rate += n / (wj * bin_s)
-        return rate
+        # Per second of network live time: a window in which the sites are live for
+        # only a fraction of its length spends only that much of the live time the
+        # false alarm rate is counted against (the largest fraction of one used
+        # site: exact when sites share their dead time, conservative otherwise).
+        live = np.where(used, pred.on_live_s, 0.0).max(axis=0) / (w * bin_s)
+        out: F64Array = np.where(live > 0.0, rate / np.where(live > 0.0, live, 1.0), rate)
+        return out
 
     def _evaluate_group(
         self, store: BinStore, si: int, klo: int, khi: int, anchor: int, far_max: float
     ) -> tuple[ExcessTests, list[tuple[tuple[int, int, int], Candidate]]]:
         w = self.scales_bins[si]
         ks = np.arange(klo, khi, dtype=np.int64)
+        sums = self._sums_for(store, si, anchor)
         pred = predict_counts(
             store,
             ks * w,
@@ -282,7 +318,14 @@ class ExcessTrigger:
             guard_bins=self.guard_bins,
             min_live_fraction=self.min_live_fraction,
             origin_bin=anchor,
+            sums=sums,
         )
+        # only the columns of the group's later windows are kept
+        g_end = (anchor + self.guard_bins + self.background_bins) // w + self._group[si]
+        if khi < g_end:
+            sums.keep_only(self._columns(si, anchor, khi, g_end) - anchor)
+        else:
+            del self._sums[si]
         used = pred.used
         if self.cfg.network:
             net_ok = (pred.net_expected > 0.0) & (pred.net_variance > 0.0)

@@ -24,6 +24,12 @@ tail where it matters)
 
     E_m = sum_{pairs, solutions} P(PB >= m - 3) / C(m - 1, 2),   P(M >= m) = 1 - exp(-E_m).
 
+Dead time: a neighbour site dead for part of its slot has its hit uniform over
+the live part, so ``|G_l|`` is then the slot's live length (the narrow slot's
+live part is at most ``2 δ_l``, so ``ρ_l`` stays an upper bound). The closeness
+``u_l`` below assumes the narrow slot (nanoseconds to microseconds) fully live;
+a live-interval edge inside it is a chance of ~1e-6 per hit and is ignored.
+
 Within a multiplicity, closer fits rank higher: ``u_l = |residual_l| / δ_l`` is
 uniform under the null, and ``p = P(M >= m+1) + P(M = m) P(Gamma(m-3) >= -sum ln u)``.
 Calibration is checked against simulated background (``tests/test_calibration.py``).
@@ -37,8 +43,9 @@ import numpy as np
 from numpy.typing import NDArray
 
 from tocsin.engine.coincidence import SeedResult, SlotGeometry
-from tocsin.engine.direction import seed_baselines, solve_triples
+from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
 from tocsin.engine.geometry import ellipsoid_up
+from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import (
     fisher_combined_sf,
@@ -56,6 +63,74 @@ HORIZON_SLACK = 0.087
 """A front may come from at most ~5 deg (sin 5 deg = 0.087) below a site's horizon:
 room for the direction error of a triple; from further below it would have crossed
 the Earth."""
+
+
+_BUCKETS = ((3, 4), (5, 7), (8, K_MAX))
+"""Seeds are evaluated in groups by their number of neighbour hits (inclusive ranges)."""
+
+
+def _concat_results(scale_index: int, parts: list[SeedResult]) -> SeedResult:
+    """One scale's results of several seed groups, ordered by seed as one call gives."""
+    empty = np.zeros(0, dtype=np.int64)
+    parts = [r for r in parts if r.seed_idx.size]
+    if not parts:
+        return SeedResult(scale_index, empty, np.zeros(0), empty, empty, empty)
+    if len(parts) == 1:
+        return parts[0]
+    seeds = np.concatenate([r.seed_idx for r in parts])
+    offs = np.cumsum([0] + [r.seed_idx.size for r in parts[:-1]])
+    nb_seed = np.concatenate([r.nb_seed + o for r, o in zip(parts, offs, strict=True)])
+    nb_idx = np.concatenate([r.nb_idx for r in parts])
+    order = np.argsort(seeds, kind="stable")
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    nb_order = np.argsort(rank[nb_seed], kind="stable")
+    return SeedResult(
+        scale_index,
+        seeds[order],
+        np.concatenate([r.p for r in parts])[order],
+        np.concatenate([r.multiplicity for r in parts])[order],
+        rank[nb_seed][nb_order],
+        nb_idx[nb_order],
+    )
+
+
+def _predict_rows(
+    sol: TripleSolution,
+    rm: I64Array,
+    rp: I64Array,
+    b_l: list[F64Array],
+    sigma_s: F64Array,
+    sigma_j: F64Array,
+    sigma_k: F64Array,
+) -> tuple[F64Array, F64Array]:
+    """Predicted delay (ns) of every neighbour hit and its 1-sigma error, for rows
+    (triple ``rm``, mirror solution ``rp``): :meth:`TripleSolution.predict` computed
+    only for the rows needed, with the baselines ``b_l`` (R, kk) per component
+    (cheaper than gathering (R, kk, 3) blocks)."""
+    bx, by, bz = b_l
+    n = sol.n[rp, rm]
+    delay = (n[:, 0, None] * bx + n[:, 1, None] * by + n[:, 2, None] * bz) / C_M_PER_NS
+    x = np.einsum("mc,mc->m", sol.n0, sol.u_j)
+    y = np.einsum("mc,mc->m", sol.n0, sol.u_k)
+    s_alpha2 = (
+        2.0
+        * C_M_PER_NS
+        * np.sqrt((x * sigma_j) ** 2 + (y * sigma_k) ** 2 + ((x + y) * sigma_s) ** 2)
+    )
+    alpha_r = np.sqrt(np.maximum(sol.alpha2, 0.0) + s_alpha2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv_alpha = np.where(alpha_r > 0.0, 1.0 / alpha_r, 0.0)
+    uj, uk, e3 = sol.u_j[rm], sol.u_k[rm], sol.e3[rm]
+    ul_j = bx * uj[:, 0, None] + by * uj[:, 1, None] + bz * uj[:, 2, None]
+    ul_k = bx * uk[:, 0, None] + by * uk[:, 1, None] + bz * uk[:, 2, None]
+    el = (bx * e3[:, 0, None] + by * e3[:, 1, None] + bz * e3[:, 2, None]) * inv_alpha[rm, None]
+    sign = np.where(rp == 0, 1.0, -1.0)[:, None]
+    g_j = ul_j - sign * (x[rm, None] * el)
+    g_k = ul_k - sign * (y[rm, None] * el)
+    ss, sj, sk = sigma_s[rm, None], sigma_j[rm, None], sigma_k[rm, None]
+    var = ((1.0 - g_j - g_k) * ss) ** 2 + (g_j * sj) ** 2 + (g_k * sk) ** 2
+    return delay, np.sqrt(var)
 
 
 def _dot3(x: F64Array, y: F64Array) -> F64Array:
@@ -81,30 +156,30 @@ class FrontSearch:
         self.back_ns = int(-self.lo[pair_el].min()) if pair_el.any() else 0
         self.ahead_ns = [int(h[pair_el].max()) if pair_el.any() else 0 for h in self.hi]
         max_sig = float(self.sigma[el].max()) if el.any() else 0.0
+        self._up_soa = [np.ascontiguousarray(self.up[:, c]) for c in range(3)]
         self._tol_base = cfg.clock_sigmas * max_sig
 
-    def trial_rate_hz(self, rates_per_ns: F64Array, live_frac: F64Array) -> float:
-        """Front seed evaluations per second that can yield a front (added to the
-        coincidence FAR multiplier).
+    def seed_weight(self, rates_per_ns: F64Array) -> F64Array:
+        """Front evaluations per seed hit that can yield a front, per seed site (added
+        to the coincidence FAR multiplier through ``Tables.seed_weight``).
 
         The front p-value is conditional on the seed's neighbour hits and is 1
         when fewer than three other sites are in its slots, so only seeds with
-        three or more count as trials: per front scale, seed rate times the
-        Poisson-binomial probability of >= 3 occupied slots.
+        three or more count as trials: per front scale, the Poisson-binomial
+        probability of >= 3 occupied slots, with every counted site (rate > 0)
+        live over its whole slot (an upper bound at the edges of live time).
         """
+        out = np.zeros(self.n_sites)
         use = self.eligible & (rates_per_ns > 0)
         if use.sum() < 4:
-            return 0.0
+            return out
         lam = np.where(use, rates_per_ns, 0.0)
-        f = np.where(use, np.clip(live_frac, 0.0, 1.0), 0.0)
-        total = 0.0
         for k in range(self.scales_ns.size):
             width = self.hi[k] - self.lo
-            q = f[None, :] * -np.expm1(-lam[None, :] * width)
+            q = -np.expm1(-lam[None, :] * width)
             q = np.where(use[None, :] & ~np.eye(self.n_sites, dtype=bool), q, 0.0)[use]
-            p3 = poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
-            total += float(np.sum(lam[use] * f[use] * p3))
-        return total * 1e9
+            out[use] += poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
+        return out
 
     def evaluate(
         self,
@@ -115,12 +190,14 @@ class FrontSearch:
         rates_per_ns: F64Array,
         *,
         p_max: float,
+        clock: LiveClock | None = None,
     ) -> list[SeedResult]:
         """Evaluate seeds ``t[seed_lo:seed_hi]`` at every front scale (one result per
         scale); keep seeds with p <= p_max and m >= 4. Triples are solved once, at
-        the widest scale's slots, and re-used for the narrower ones."""
+        the widest scale's slots, and re-used for the narrower ones. ``clock`` gives
+        the sites' live time: a neighbour hit is uniform over the live part of its
+        slot, so ``rho`` uses that length (None: every site live throughout)."""
         n_f = self.scales_ns.size
-        k_sig = self.cfg.clock_sigmas
         use = self.eligible & (rates_per_ns > 0)
         empty = np.zeros(0, dtype=np.int64)
         none = [SeedResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
@@ -149,12 +226,51 @@ class FrontSearch:
         rank = np.arange(g.size) - np.repeat(starts, gsize)
         kmask = rank < K_MAX
         g, nbi, sn, d, rank = g[kmask], nbi[kmask], sn[kmask], d[kmask], rank[kmask]
-        # seeds with >= 3 distinct neighbour sites
-        first_site = np.unique(g * self.n_sites + sn)
+        # seeds with >= 3 distinct neighbour sites (a sort: cheaper than np.unique's hash)
+        key = np.sort(g * self.n_sites + sn)
+        first_site = key[np.r_[True, key[1:] != key[:-1]]]
         n_sites_per = np.bincount(first_site // self.n_sites, minlength=seed_pos.size)
         cand = np.flatnonzero(n_sites_per >= 3)
         if cand.size == 0:
             return none
+        # Seeds in buckets of similar neighbour counts: each bucket's tables are only
+        # as wide as its seeds need (most seeds of a dense array have 3-4 hits, a few
+        # many). Seeds are independent, so this changes nothing but the padding.
+        n_nb = np.bincount(g, minlength=seed_pos.size)[cand]
+        parts: list[list[SeedResult]] = []
+        for lo_n, hi_n in _BUCKETS:
+            sel_c = cand[(n_nb >= lo_n) & (n_nb <= hi_n)]
+            if sel_c.size:
+                parts.append(
+                    self._evaluate_seeds(
+                        sel_c, g, nbi, sn, d, rank, seed_pos, t_seed, s_seed_all, sub, p_max, clock
+                    )
+                )
+        return [_concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+
+    def _evaluate_seeds(
+        self,
+        cand: I64Array,
+        g: I64Array,
+        nbi: I64Array,
+        sn: I64Array,
+        d: F64Array,
+        rank: I64Array,
+        seed_pos: I64Array,
+        t_seed: I64Array,
+        s_seed_all: I32Array,
+        sub: I64Array,
+        p_max: float,
+        clock: LiveClock | None,
+    ) -> list[SeedResult]:
+        """The front statistic at every scale for seeds ``cand`` (positions in
+        ``seed_pos``) from their neighbour hits (flat ``g``, ``nbi``, ... as built by
+        :meth:`evaluate`)."""
+        n_f = self.scales_ns.size
+        wide = n_f - 1
+        k_sig = self.cfg.clock_sigmas
+        empty = np.zeros(0, dtype=np.int64)
+        none = [SeedResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
         remap = np.full(seed_pos.size, -1, dtype=np.int64)
         remap[cand] = np.arange(cand.size)
         sel = remap[g] >= 0
@@ -170,10 +286,29 @@ class FrontSearch:
         nsite[gg, rank] = sn
         dly[gg, rank] = d
         seed_site = s_seed_all[cand].astype(np.int64)
+        # neighbour hits of sites dead for part of the search stretch: their slots'
+        # live length replaces the width (rho is then an upper bound, see module doc)
+        pr_row = pr_col = empty
+        if clock is not None:
+            part = clock.partial_sites(
+                int(t_seed[0]) - self.back_ns, int(t_seed[-1]) + self.ahead_ns[wide] + 1
+            )
+            pr_row, pr_col = np.nonzero(valid & part[nsite])
         b_l = seed_baselines(self.ecef, seed_site, nsite)  # (n_c, kk, 3)
-        # all pairs (a, b) of neighbour hits at distinct sites
+        # one hit per site: only seeds with two hits of one site need de-duplication
+        same_seed = (nsite[:, :, None] == nsite[:, None, :]) & np.triu(
+            np.ones((kk, kk), dtype=bool), 1
+        )
+        same_seed &= valid[:, :, None] & valid[:, None, :]
+        dup_seed = same_seed.any(axis=(1, 2))
+        # all pairs (a, b) of neighbour hits at distinct sites (valid columns are the
+        # first n of each row; only seeds with a repeated site need the site test)
         ia, ib = np.triu_indices(kk, 1)
-        pm = valid[:, ia] & valid[:, ib] & (nsite[:, ia] != nsite[:, ib])
+        n_valid = valid.sum(axis=1)
+        pm = ib[None, :] < n_valid[:, None]
+        dup_c = np.flatnonzero(dup_seed)
+        if dup_c.size:
+            pm[dup_c] &= nsite[dup_c][:, ia] != nsite[dup_c][:, ib]
         mg, mp = np.nonzero(pm)
         if mg.size == 0:
             return none
@@ -196,22 +331,33 @@ class FrontSearch:
         sol = sol.take(ok_t)
         above = above[:, ok_t]
         sa, sb = nsite[mg, a], nsite[mg, b]
-        pred = sol.predict(b_l[mg], self.sigma[seed_site[mg]], self.sigma[sa], self.sigma[sb])
-        # one row per (mirror solution, triple) above the seed's horizon
-        rp, rm = np.nonzero(above)
+        # one row per (triple, mirror solution) above the seed's horizon, triple-major
+        # so that the rows of one seed are contiguous
+        rm, rp = np.nonzero(above.T)
         n_r = sol.n[rp, rm]  # (R, 3)
-        nrow = nsite[mg[rm]]  # (R, kk)
-        base_delta = k_sig * np.sqrt(self.sigma[nrow] ** 2 + pred.sigma_ns[rp, rm] ** 2)
-        abs_resid = np.abs(dly[mg[rm]] - pred.delay_ns[rp, rm])
-        # a further site counts only if the source is above its horizon too
-        above_l = _dot3(n_r[:, None, :], self.up[nrow]) >= -HORIZON_SLACK
-        others = valid[mg[rm]] & (nrow != sa[rm][:, None]) & (nrow != sb[rm][:, None]) & above_l
-        # one hit per site: only seeds with two hits of one site need de-duplication
-        same_seed = (nsite[:, :, None] == nsite[:, None, :]) & np.triu(
-            np.ones((kk, kk), dtype=bool), 1
+        rseed = mg[rm]
+        nrow = nsite[rseed]  # (R, kk)
+        delay, sig_pred = _predict_rows(
+            sol,
+            rm,
+            rp,
+            [np.ascontiguousarray(b_l[:, :, c])[rseed] for c in range(3)],
+            self.sigma[seed_site[mg]],
+            self.sigma[sa],
+            self.sigma[sb],
         )
-        same_seed &= valid[:, :, None] & valid[:, None, :]
-        dup_rows = np.flatnonzero(same_seed.any(axis=(1, 2))[mg[rm]])
+        base_delta = k_sig * np.sqrt(self.sigma[nrow] ** 2 + sig_pred**2)
+        abs_resid = np.abs(dly[rseed] - delay)
+        # a further site counts only if the source is above its horizon too
+        up = self._up_soa
+        above_l = (
+            n_r[:, 0, None] * up[0][nrow]
+            + n_r[:, 1, None] * up[1][nrow]
+            + n_r[:, 2, None] * up[2][nrow]
+        ) >= -HORIZON_SLACK
+        others = valid[rseed] & (nrow != sa[rm][:, None]) & (nrow != sb[rm][:, None])
+        others &= above_l
+        dup_rows = np.flatnonzero(dup_seed[rseed])
         # Triples valid only thanks to a wider scale's tolerance are not valid at a
         # narrower one (same first-order slack as solve_triples, per scale).
         norm0 = np.linalg.norm(sol.n0, axis=1)
@@ -242,6 +388,12 @@ class FrontSearch:
             hi_f = self.hi[f][seed_site[:, None], nsite]
             in_slot = valid & (dly <= hi_f)
             width = np.where(valid, hi_f - self.lo[seed_site[:, None], nsite], 1.0)
+            if pr_row.size and clock is not None:
+                t_c = t_seed[cand][pr_row]
+                slot0 = t_c + self.lo[seed_site[pr_row], nsite[pr_row, pr_col]].astype(np.int64)
+                slot1 = t_c + hi_f[pr_row, pr_col].astype(np.int64)
+                live = clock.live_ns(nsite[pr_row, pr_col], slot0, slot1)
+                width[pr_row, pr_col] = np.maximum(live, 1).astype(np.float64)
             out.append(self._at_scale(f, ts, in_slot, width, trip_ok, p_max))
         return out
 
@@ -280,16 +432,21 @@ class FrontSearch:
         log_u[rc] = np.where(
             cons[rc], np.log(np.maximum(ts.abs_resid[rc] / delta[rc], 1e-300)), 0.0
         ).sum(axis=-1)
-        score = mult + 1e-6 * (-log_u)  # multiplicity first, then closeness of fit
         row_seed = mg[rm]
-        order = np.lexsort((-score, row_seed))
-        _, firsts = np.unique(row_seed[order], return_index=True)
-        best = order[firsts]
-        best_m = mult[best]
-        strong = best_m >= 4
-        if not strong.any():
+        # Best row per seed: multiplicity first, then closeness of fit; ties go to the
+        # first row. Only rows with m >= 4 can make a front, and a seed's rows are
+        # contiguous (triple-major), so a segmented maximum does it without sorting.
+        strong = np.flatnonzero(mult >= 4)
+        if strong.size == 0:
             return none
-        best, best_m = best[strong], best_m[strong]
+        score = mult[strong] + 1e-6 * (-log_u[strong])
+        rs = row_seed[strong]
+        seg = np.flatnonzero(np.r_[True, rs[1:] != rs[:-1]])
+        top = np.repeat(np.maximum.reduceat(score, seg), np.diff(np.r_[seg, rs.size]))
+        at_top = np.flatnonzero(score == top)
+        first = at_top[np.r_[True, rs[at_top][1:] != rs[at_top][:-1]]]
+        best = strong[first]
+        best_m = mult[best]
 
         def rho(rows: I64Array) -> F64Array:
             """P(a uniform hit in its slot falls in the narrow slot), per row and hit."""

@@ -26,6 +26,7 @@ from tocsin.engine.exposure import BinStore
 from tocsin.types import NS_PER_S, BoolArray, F64Array, I64Array
 
 __all__ = [
+    "CumulativeSums",
     "Prediction",
     "RateEstimate",
     "background_rates",
@@ -151,6 +152,89 @@ def _csum0(x: np.ndarray) -> np.ndarray:
     return out
 
 
+_N_SUMS = 5
+"""Running sums kept per site: y, e, e t, e t^2, y t (see :func:`predict_counts`)."""
+
+
+def _bin_terms(
+    store: BinStore, origin: int, b0: int, b1: int
+) -> tuple[I64Array, F64Array, F64Array, F64Array, F64Array]:
+    """Per-bin terms of bins ``[b0, b1)``: counts y, live seconds e, e t, e t^2, y t,
+    with t the bin centre in seconds from ``origin``; bins before the oldest held bin
+    are empty."""
+    bin_s = store.bin_ns / NS_PER_S
+    start = min(max(b0, store.first_bin), b1)
+    y = store.counts(start, b1)
+    live_ns = store.live_ns(start, b1)
+    if start > b0:  # empty bins before the oldest held bin
+        pad = ((0, 0), (start - b0, 0))
+        y = np.pad(y, pad)
+        live_ns = np.pad(live_ns, pad)
+    e = live_ns / NS_PER_S
+    t = (np.arange(b0 - origin, b1 - origin, dtype=np.float64) + 0.5) * bin_s
+    return y, e, e * t, e * (t * t), y * t
+
+
+class CumulativeSums:
+    """Running sums along bins from a fixed ``origin_bin``, extended as data arrive.
+
+    Column ``j`` holds the sums over bins ``[origin, origin + j)`` of the five
+    terms :func:`predict_counts` fits (counts, live seconds and their time
+    moments, times in seconds from the origin). Only the columns in ``keep``
+    are stored. Extending adds the new bins one after another to the last
+    column, exactly as one cumulative sum over the whole stretch would, so the
+    values are bit-identical to a fresh computation whatever the extension steps.
+    """
+
+    def __init__(self, n_sites: int, origin_bin: int, keep: I64Array) -> None:
+        self.origin = origin_bin
+        self.end = origin_bin
+        """One past the last bin summed (column ``end - origin`` is the latest)."""
+        self._keep = np.unique(np.asarray(keep, dtype=np.int64))
+        self._last: list[np.ndarray] = [np.zeros(n_sites, dtype=np.int64)] + [
+            np.zeros(n_sites) for _ in range(_N_SUMS - 1)
+        ]
+        self._cols: dict[int, list[np.ndarray]] = {}
+        if self._keep.size and self._keep[0] == 0:
+            self._cols[0] = [x.copy() for x in self._last]
+
+    def extend(self, store: BinStore, end_bin: int) -> None:
+        """Add bins up to ``end_bin`` (exclusive)."""
+        if end_bin <= self.end:
+            return
+        j0, j1 = self.end - self.origin, end_bin - self.origin
+        want = self._keep[(self._keep > j0) & (self._keep <= j1)]
+        terms = _bin_terms(store, self.origin, self.end, end_bin)
+        last: list[np.ndarray] = []
+        picked: list[np.ndarray] = []
+        for prev, x in zip(self._last, terms, strict=True):
+            c = np.cumsum(np.concatenate([prev[:, None], x], axis=1), axis=1)
+            last.append(c[:, -1].copy())
+            picked.append(c[:, want - j0])
+        for i, j in enumerate(want.tolist()):
+            self._cols[j] = [p[:, i] for p in picked]
+        self._last = last
+        self.end = end_bin
+
+    def columns(self, idx: I64Array) -> list[np.ndarray]:
+        """The five sums at columns ``idx`` (each (n_sites, len(idx)))."""
+        try:
+            cols = [self._cols[int(j)] for j in idx]
+        except KeyError as exc:
+            raise KeyError(
+                f"column {exc.args[0]} (bin {self.origin + int(exc.args[0])}) was not "
+                f"kept or not yet summed (summed to bin {self.end})"
+            ) from None
+        return [np.stack([c[i] for c in cols], axis=1) for i in range(_N_SUMS)]
+
+    def keep_only(self, idx: I64Array) -> None:
+        """Keep (and from now on sum) only columns ``idx``."""
+        self._keep = np.unique(np.asarray(idx, dtype=np.int64))
+        keep = set(self._keep.tolist())
+        for j in [j for j in self._cols if j not in keep]:
+            del self._cols[j]
+
+
 def predict_counts(
     store: BinStore,
     on_b0: int | I64Array,
@@ -161,6 +245,7 @@ def predict_counts(
     min_live_fraction: float = _DEFAULT_MIN_LIVE_FRACTION,
     min_trend_fraction: float = _DEFAULT_MIN_TREND_FRACTION,
     origin_bin: int | None = None,
+    sums: CumulativeSums | None = None,
 ) -> Prediction:
     """Drift-following expected counts for many on-windows and all sites at once.
 
@@ -187,6 +272,11 @@ def predict_counts(
     hits), which is what a fresh store holds there; every background itself
     must be held.
 
+    ``sums``: running sums from ``origin_bin`` kept between calls (a
+    :class:`CumulativeSums` whose ``keep`` holds every column the windows use):
+    extended to the last window's end instead of summing from the origin again.
+    Same values to the bit.
+
     ``ok`` needs background live time ``>= min_live_fraction`` of its length.
     The slope is fitted only when the live time is ``>= min_trend_fraction`` of
     the length (and its spread in time is not degenerate); otherwise ``b = 0``
@@ -212,27 +302,21 @@ def predict_counts(
     end = int(b1.max())
     bin_s = store.bin_ns / NS_PER_S
     held = store.first_bin
-    if first < held:
+    if first < held and (sums is None or sums.end <= first):
         raise ValueError(f"background from bin {first} is no longer held (oldest bin {held})")
-    start = max(origin, held)
-    y = store.counts(start, end)
-    live_ns = store.live_ns(start, end)
-    if start > origin:  # empty bins between the origin and the oldest held bin
-        pad = ((0, 0), (start - origin, 0))
-        y = np.pad(y, pad)
-        live_ns = np.pad(live_ns, pad)
-    e = live_ns / NS_PER_S
-    t = (np.arange(end - origin, dtype=np.float64) + 0.5) * bin_s
-    c_y = _csum0(y)
-    c_e = _csum0(e)
-    c_et = _csum0(e * t)
-    c_et2 = _csum0(e * (t * t))
-    c_yt = _csum0(y * t)
-
     lo = lo_bg - origin
     hi = b0 - guard_bins - origin
     a0 = b0 - origin
     a1 = b1 - origin
+    if sums is None:
+        c_y, c_e, c_et, c_et2, c_yt = (_csum0(x) for x in _bin_terms(store, origin, origin, end))
+    else:
+        if sums.origin != origin:
+            raise ValueError(f"running sums start at bin {sums.origin}, not at {origin}")
+        sums.extend(store, end)
+        cols = np.unique(np.concatenate([lo, hi, a0, a1]))
+        c_y, c_e, c_et, c_et2, c_yt = sums.columns(cols)
+        lo, hi, a0, a1 = (np.searchsorted(cols, x) for x in (lo, hi, a0, a1))
 
     s0 = c_e[:, hi] - c_e[:, lo]
     s1 = c_et[:, hi] - c_et[:, lo]
