@@ -13,7 +13,9 @@ from scipy import stats
 from tocsin.gpstime import gps_ns_to_utc_iso
 from tocsin.types import GpsNs
 
-METHOD_VERSION = "tocsin-engine/1"
+METHOD_VERSION = "tocsin-engine/2"
+"""Bumped whenever a statistic or false alarm rate is computed differently (2: partly-live
+bins with live-clock offsets, FAR per second of network live time)."""
 
 
 def sigma_from_p(p: float) -> float:
