@@ -24,6 +24,7 @@ COMMANDS: dict[str, str] = {
     "agent": "tocsin.cli.agent",
     "alerts": "tocsin.cli.alerts",
     "retract": "tocsin.cli.retract",
+    "followup": "tocsin.cli.followup",
 }
 
 
