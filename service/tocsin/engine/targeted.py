@@ -8,6 +8,8 @@ is evaluated at every scale:
 * ``sites`` — the coincidence statistic of :mod:`tocsin.engine.coincidence`
   (distinct sites in geometry-aware slots; every hit a seed; every scale of
   ``CoincidenceConfig.scales_s``), rates and live fractions from the stretch;
+* ``front`` — the plane-front statistic of :mod:`tocsin.engine.front` (three sites
+  fix a front, further sites must fit it) at every ``front_scales_s``;
 * ``directed`` — only when the outside packet gives a direction: each visible
   site's hits are shifted by its plane-front delay ``+ (n . r_j) / c`` for the
   ECEF unit vector ``n`` towards the source at ``t`` (:mod:`tocsin.engine.sky`,
@@ -47,6 +49,7 @@ from scipy import stats as sps
 
 from tocsin.engine.block import Block
 from tocsin.engine.coincidence import CoincidenceTrigger, Tables
+from tocsin.engine.front import FrontSearch
 from tocsin.engine.stats import sidak
 from tocsin.engine.upper_limit import kbn_upper_limit
 from tocsin.model.config import CoincidenceConfig
@@ -60,8 +63,8 @@ GUARD_NS = NS_PER_S
 MIN_LIVE_RATIO = 0.8
 """An off-source window needs at least this fraction of the on-source window's live time."""
 
-KIND_SITES, KIND_DIRECTED, KIND_NETWORK, KIND_SITE = 0, 1, 2, 3
-KIND_NAMES = ("sites", "directed", "count_network", "count_site")
+KIND_SITES, KIND_FRONT, KIND_DIRECTED, KIND_NETWORK, KIND_SITE = 0, 1, 2, 3, 4
+KIND_NAMES = ("sites", "front", "directed", "count_network", "count_site")
 
 
 @dataclass(frozen=True, slots=True)
@@ -177,7 +180,12 @@ class TargetedSearch:
             o = np.argsort(a, kind="stable")
             a, b = a[o], b[o]
             self._live.append((a, b, np.concatenate([[0], np.cumsum(b - a)])))
-        self.base = self._coincidences(self.trigger, self.tables, block.t, block.site, KIND_SITES)
+        self.base = Evaluations.concat(
+            [
+                self._coincidences(self.trigger, self.tables, block.t, block.site, KIND_SITES),
+                self._fronts(),
+            ]
+        )
 
     # -- helpers ----------------------------------------------------------------
     def live_before(self, j: int, x: I64Array) -> I64Array:
@@ -215,24 +223,60 @@ class TargetedSearch:
         return Evaluations.concat(parts)
 
     def directed(self, direction: Direction) -> Evaluations:
-        """The ``directed`` statistic over the whole stretch for one Earth-fixed direction."""
+        """The ``directed`` statistic over the whole stretch for one Earth-fixed direction.
+
+        Only sites that see the source and whose clocks resolve plane-front delays
+        (``clock_sigma_ns <= front_max_clock_ns``, as for the ``front`` statistic) take part.
+        """
         reg = self.registry
+        use = (
+            direction.visible & self.ok & (reg.clock_sigma_ns <= self.coinc_cfg.front_max_clock_ns)
+        )
+        idx = np.flatnonzero(use)
+        empty = Evaluations.concat([])
+        if idx.size < 2:
+            return empty
         delay = np.rint(reg.ecef_m @ direction.n_ecef / C_M_PER_NS).astype(np.int64)
-        vis = direction.visible
-        m = vis[self.block.site]
+        sub_of = np.full(len(reg), -1, np.int64)
+        sub_of[idx] = np.arange(idx.size)
+        m = use[self.block.site]
         t = self.block.t[m] + delay[self.block.site[m]]
-        s = self.block.site[m]
+        s = sub_of[self.block.site[m]]
         o = np.argsort(t, kind="stable")
         t, s = t[o], s[o]
-        colocated = SiteRegistry(reg.sites)
-        colocated.ecef_m = np.zeros_like(reg.ecef_m)  # delays removed: no light time left
+        colocated = reg.subset([reg.ids[j] for j in idx])
+        colocated.ecef_m = np.zeros_like(colocated.ecef_m)  # delays removed: no light time
         trig = CoincidenceTrigger(colocated, self.coinc_cfg)
-        tab = trig.tables(self.rate_hz, self.live_frac, self.ok & vis)
+        tab = trig.tables(self.rate_hz[idx], self.live_frac[idx], self.ok[idx])
         ev = self._coincidences(trig, tab, t, s, KIND_DIRECTED)
+        site = idx[ev.site]
         # report the time back on the un-shifted axis of the seed's site
-        return Evaluations(
-            ev.t - delay[ev.site], ev.p, ev.kind, ev.scale_s, ev.site, ev.multiplicity
-        )
+        return Evaluations(ev.t - delay[site], ev.p, ev.kind, ev.scale_s, site, ev.multiplicity)
+
+    def _fronts(self) -> Evaluations:
+        """The ``front`` statistic of :mod:`tocsin.engine.front` at its scales, every seed."""
+        fs = FrontSearch(self.registry, self.coinc_cfg)
+        t, s32 = self.block.t, np.asarray(self.block.site, dtype=np.int32)
+        rates = self.tables.rates_per_ns
+        parts: list[Evaluations] = []
+        for i0 in range(0, t.size, SEED_CHUNK // 4):
+            i1 = min(t.size, i0 + SEED_CHUNK // 4)
+            for res in fs.evaluate(t, s32, i0, i1, rates, p_max=1.0):
+                m = res.seed_idx.size
+                if m == 0:
+                    continue
+                w = self.coinc_cfg.front_scales_s[res.scale_index]
+                parts.append(
+                    Evaluations(
+                        t[res.seed_idx],
+                        res.p,
+                        np.full(m, KIND_FRONT, np.int64),
+                        np.full(m, w),
+                        s32[res.seed_idx].astype(np.int64),
+                        res.multiplicity,
+                    )
+                )
+        return Evaluations.concat(parts)
 
     def _counts(self, starts: I64Array, length_ns: int, rng: np.random.Generator) -> Evaluations:
         """Count windows in every tile starting at ``starts`` (one row per tile)."""
@@ -308,11 +352,11 @@ class TargetedSearch:
         starts = starts[keep]
         tile_live = tile_live[keep]
         parts = [self.base, self._counts(starts, length, rng)]
-        stats_used = ["sites", "count_network", "count_site"]
+        stats_used = ["sites", "front", "count_network", "count_site"]
         vis_ids: list[str] | None = None
         if direction is not None:
             parts.append(self.directed(direction))
-            stats_used.insert(1, "directed")
+            stats_used.insert(2, "directed")
             vis_ids = [s for s, v in zip(self.registry.ids, direction.visible, strict=True) if v]
         ev = Evaluations.concat(parts)
         # minimum p per tile (tiles do not overlap; sort them by start)

@@ -53,6 +53,7 @@ from tocsin.io.journal import Journal, read_from
 from tocsin.io.recording import decode_line
 from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
+from tocsin.live.followup_wiring import followup_for, start_followup
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
 from tocsin.model.batch import HitBatch, parse_batch
@@ -116,6 +117,7 @@ class Service:
         self.dispatcher = AlertDispatcher(
             self.archive, self.packet_dir, topics.alerts_topic(self.root), self.metrics
         )
+        self.followup = followup_for(self)  # before _restore: the ring takes the journal too
         self.pipeline = self._restore()
         # astropy loads its Earth-orientation tables on the first sky transform (~0.5 s):
         # do it now, not when the first candidate's direction is fitted
@@ -125,6 +127,7 @@ class Service:
     def _restore(self) -> Pipeline:
         ck = checkpoint.load(self.ckpt_path, self.key)
         pipe = ck.pipeline if ck is not None else Pipeline(self.registry, self.cfg.engine)
+        pipe.block_sink = self.followup.ring.add if self.followup is not None else None
         n = 0
         # Without a checkpoint, the last two background stretches rebuild every rate
         # estimate; older journal (months of it) is not needed.
@@ -315,6 +318,7 @@ class Service:
         """Connect, consume and reconnect until ``stop`` is set; then checkpoint."""
         backoff = 0.5
         deliver = asyncio.create_task(self.dispatcher.run(stop), name="alert-dispatch")
+        fu = start_followup(self, stop)
         try:
             while not stop.is_set():
                 client = self._client()
@@ -327,6 +331,8 @@ class Service:
                         backoff = 0.5
                         await client.subscribe(topics.all_hits_filter(self.root), qos=1)
                         await client.subscribe(topics.all_status_filter(self.root), qos=1)
+                        if self.followup is not None and self.cfg.followup.mqtt:
+                            await client.subscribe(topics.external_topic(self.root), qos=1)
                         self.dispatcher.client = client
                         self.dispatcher.wake.set()
                         try:
@@ -350,6 +356,9 @@ class Service:
             stop.set()
             with contextlib.suppress(asyncio.CancelledError):
                 await deliver
+            if fu is not None:
+                with contextlib.suppress(asyncio.CancelledError):
+                    await fu
             self.save_checkpoint()
             event(log, "stopped", checkpoint=str(self.ckpt_path))
 
@@ -420,7 +429,9 @@ class Service:
         parsed = topics.site_of(self.root, msg.topic.value)
         payload = msg.payload if isinstance(msg.payload, bytes) else str(msg.payload).encode()
         journaled = False
-        if parsed is None:
+        if self.followup is not None and msg.topic.value == topics.external_topic(self.root):
+            self.followup.offer_nowait(payload, "mqtt")
+        elif parsed is None:
             self._reject(
                 "?", "bad_topic", "<topic>", f"unexpected topic {msg.topic.value!r}", self.clock()
             )
