@@ -313,6 +313,7 @@ class FollowupDesk:
                 p_value_offsource=result.p_offsource,
                 p_value_sidak=result.p_analytic,
                 offsource_windows=result.n_offsource,
+                offsource_excluded=result.n_offsource_excluded,
                 evaluations=result.n_evaluations,
                 live_fraction=result.live_fraction,
                 statistics=result.statistics,

@@ -125,6 +125,15 @@ def _result_params(w: Any, r: TargetedResult) -> None:
     w.append(_p("p_value_offsource", _f(r.p_offsource), dtype="float"))
     w.append(_p("p_value_sidak", _f(r.p_analytic), dtype="float"))
     w.append(_p("offsource_windows", str(r.n_offsource), dtype="int", ucd="meta.number"))
+    w.append(
+        _p(
+            "offsource_excluded",
+            str(r.n_offsource_excluded),
+            dtype="int",
+            ucd="meta.number",
+            desc="off-source windows left out because they hold a significant event",
+        )
+    )
     w.append(_p("evaluations", str(r.n_evaluations), dtype="int", ucd="meta.number"))
     w.append(_p("window_start_gps_ns", str(int(r.window_start)), dtype="int", unit="ns"))
     w.append(_p("window_end_gps_ns", str(int(r.window_end)), dtype="int", unit="ns"))

@@ -29,7 +29,9 @@ stretch (the same direction in Earth-fixed axes, so the same visible sites and
 delays): with ``n`` off-source windows of which ``m_lt`` have a smaller minimum
 and ``m_eq`` an equal one, ``p = (m_lt + u (m_eq + 1)) / (n + 1)`` is exactly
 uniform when the on- and off-source windows are exchangeable (background only,
-stationary over the stretch). When no off-source window is as extreme the
+stationary over the stretch). An off-source window holding a significant event of
+its own (its Sidak bound below ``SIGNAL_P / (n + 1)``) is left out: off-source
+trials must be background (common practice). When no off-source window is as extreme the
 analytic bound ``1 - (1 - p_min)^E`` (Sidak over the ``E`` evaluations in the
 on-source window; common practice) is reported if smaller, since the off-source
 set cannot resolve below ``1 / (n + 1)``.
@@ -60,6 +62,9 @@ SEED_CHUNK = 200_000
 """Seeds evaluated per call (bounds the memory of the pair search)."""
 GUARD_NS = NS_PER_S
 """Windows keep this far (ns) from the ends of the stretch, plus the slots' reach."""
+SIGNAL_P = 0.01
+"""Off-source windows whose own trials-corrected bound is below SIGNAL_P / (windows + 1)
+are taken to hold a real event and left out of the calibration (see :meth:`search`)."""
 MIN_LIVE_RATIO = 0.8
 """An off-source window needs at least this fraction of the on-source window's live time."""
 
@@ -127,6 +132,8 @@ class TargetedResult:
     p_offsource: float
     p_analytic: float
     n_offsource: int
+    n_offsource_excluded: int
+    """Off-source windows left out because they hold a significant event of their own."""
     n_evaluations: int
     best: Best | None
     live_fraction: float
@@ -366,11 +373,20 @@ class TargetedSearch:
         inside = (tile >= 0) & (ev.t < st_sorted[np.maximum(tile, 0)] + length)
         tile_min = np.ones(starts.size)
         np.minimum.at(tile_min, tile[inside], ev.p[inside])
+        tile_n = np.bincount(tile[inside], minlength=starts.size)
         mins = np.empty(starts.size)
         mins[order] = tile_min
+        n_in = np.empty(starts.size, np.int64)
+        n_in[order] = tile_n
         on_min = float(mins[0])
-        off = mins[1:]
+        # Off-source windows must hold background only: one whose own Sidak bound is
+        # below SIGNAL_P / (windows + 1) holds an event and is left out (under the null
+        # that removes on average SIGNAL_P windows per search).
+        off_an = sidak(mins[1:], np.maximum(n_in[1:], 1))
+        clean = off_an >= SIGNAL_P / starts.size
+        off = mins[1:][clean]
         n_off = int(off.size)
+        n_excluded = int(np.sum(~clean))
         u = float(rng.random())
         m_lt = int(np.sum(off < on_min))
         m_eq = int(np.sum(off == on_min))
@@ -395,6 +411,7 @@ class TargetedSearch:
             p_offsource=float(p_off),
             p_analytic=p_an,
             n_offsource=n_off,
+            n_offsource_excluded=n_excluded,
             n_evaluations=n_eval,
             best=best,
             live_fraction=float(tile_live[0] / (n_sites * length)),
