@@ -87,6 +87,14 @@ class FollowupDesk:
         self.reach_ns = int(max(coinc.scales_s) * NS_PER_S) + 2 * GUARD_NS
         self.last_packet: bytes | None = None
         """The last answer's packet (for ``tocsin followup``, which keeps no archive)."""
+        self.answered_before: dict[str, str] = {}
+        """Outside IVORN -> our first answer, from the archive (answers of earlier runs)."""
+        if self.archive is not None:
+            rows = self.archive.latest(limit=100_000)
+            withdrawn = {r.candidate_id for r in rows if r.kind == "retraction"}
+            for row in rows:
+                if row.kind == "followup" and row.cites and row.candidate_id not in withdrawn:
+                    self.answered_before.setdefault(row.cites, row.ivorn)
 
     # -- intake ----------------------------------------------------------------
     def offer(self, ev: ExternalEvent) -> str:
@@ -107,6 +115,12 @@ class FollowupDesk:
             )
         if ev.dedup_key in self.keys or ev.ivorn in self.alias:
             raise ExternalRejected("duplicate", "packet already received", ivorn=ev.ivorn)
+        if ev.ivorn in self.answered_before:
+            raise ExternalRejected(
+                "duplicate",
+                f"already answered by {self.answered_before[ev.ivorn]} (archive)",
+                ivorn=ev.ivorn,
+            )
         self.keys.add(ev.dedup_key)
         for cited, how in ev.citations:
             if how == "retraction":
@@ -146,6 +160,12 @@ class FollowupDesk:
     def _retract(self, cited: str, ev: ExternalEvent) -> str:
         root = self.alias.get(cited)
         tr = self.tracked.get(root) if root is not None else None
+        earlier = self.answered_before.pop(cited, None)
+        if tr is None and earlier is not None and self.desk is not None:
+            reason = f"the cited event {cited} was retracted by {ev.ivorn}"
+            self.desk.retract(earlier, reason)
+            self.counters["answers_retracted"] += 1
+            return "retracted"
         if tr is None:
             self.retracted_early.add(cited)
             self.counters["retraction_noted"] += 1
