@@ -184,6 +184,30 @@ def test_search_limits_equal_astropy(network: tuple[SiteRegistry, dict[str, floa
     assert r.expected["network"] == pytest.approx(sum(r.expected[s] for s in reg.ids))
 
 
+def test_keeping_only_possible_minima_changes_nothing(
+    network: tuple[SiteRegistry, dict[str, float]],
+) -> None:
+    """With the window length known, evaluations that cannot be a window's minimum are
+    dropped (memory); the result is the same."""
+    reg, rates = network
+    block = _background(reg, rates, seed=15)
+    full = TargetedSearch(reg, block, CoincidenceConfig())
+    lean = TargetedSearch(reg, block, CoincidenceConfig(), window_ns=WINDOW_NS)
+    assert lean.base.t.size < full.base.t.size  # few evaluations per 20 s window here
+    assert np.array_equal(lean.base_hist, full.base_hist)
+    t = T0 + 1234 * NS_PER_S
+    vis = _visible(reg, t, 150.0, 35.0)
+    d = Direction(radec_to_ecef_unit(150.0, 35.0, t), vis)
+    a = full.search(t, before_ns=WINDOW_NS // 2, after_ns=WINDOW_NS // 2, direction=d, seed=3)
+    b = lean.search(t, before_ns=WINDOW_NS // 2, after_ns=WINDOW_NS // 2, direction=d, seed=3)
+    assert (a.p_value, a.best, a.n_evaluations, a.n_offsource) == (
+        b.p_value,
+        b.best,
+        b.n_evaluations,
+        b.n_offsource,
+    )
+
+
 def test_window_outside_the_stretch_is_refused(
     network: tuple[SiteRegistry, dict[str, float]],
 ) -> None:

@@ -228,7 +228,7 @@ class FollowupDesk:
         ev = self.tracked[key].event
         assert ev.time_gps_ns is not None
         before, after = self.window(ev)
-        ts = TargetedSearch(self.registry, block, self.coinc)
+        ts = TargetedSearch(self.registry, block, self.coinc, window_ns=before + after)
         direction = self.direction(ev)
         seed = int(hashlib.sha1(ev.dedup_key.encode()).hexdigest()[:8], 16)
         return ts.search(

@@ -62,6 +62,10 @@ SEED_CHUNK = 200_000
 """Seeds evaluated per call (bounds the memory of the pair search)."""
 GUARD_NS = NS_PER_S
 """Windows keep this far (ns) from the ends of the stretch, plus the slots' reach."""
+KEEP_FACTOR = 50.0
+"""With a known window length, an evaluation is kept only if its p is below
+KEEP_FACTOR / (evaluations of its kind and scale per window): a window's minimum is
+then above that cap with probability about exp(-50), i.e. never."""
 SIGNAL_P = 0.01
 """Off-source windows whose own trials-corrected bound is below SIGNAL_P / (windows + 1)
 are taken to hold a real event and left out of the calibration (see :meth:`search`)."""
@@ -158,10 +162,18 @@ class TargetedSearch:
         *,
         count_scales_s: tuple[float, ...] = (1.0, 4.0, 16.0, 64.0, 256.0),
         min_expected: float = 2.0,
+        window_ns: int | None = None,
     ) -> None:
         """``block``: the stretch searched (on- and off-source). ``min_expected``: a site's
-        count window is tested alone only if it expects at least this many hits."""
+        count window is tested alone only if it expects at least this many hits.
+        ``window_ns``: the length of the windows that will be searched, when known: then
+        only evaluations that could be a window's minimum are kept (memory; see
+        :data:`KEEP_FACTOR`), otherwise all are."""
         self.registry = registry
+        self.window_ns = window_ns
+        self._nbins = int((block.t_end - block.t_start) // NS_PER_S) + 2
+        self.base_hist = np.zeros(self._nbins, np.int64)
+        """Evaluations of the fixed statistics per second of the stretch (all, kept or not)."""
         self.block = block
         self.coinc_cfg = coinc
         self.count_scales_ns = tuple(round(w * NS_PER_S) for w in sorted(count_scales_s))
@@ -189,12 +201,33 @@ class TargetedSearch:
             self._live.append((a, b, np.concatenate([[0], np.cumsum(b - a)])))
         self.base = Evaluations.concat(
             [
-                self._coincidences(self.trigger, self.tables, block.t, block.site, KIND_SITES),
-                self._fronts(),
+                self._coincidences(
+                    self.trigger, self.tables, block.t, block.site, KIND_SITES, self.base_hist
+                ),
+                self._fronts(self.base_hist),
             ]
         )
 
+    def _keep(self, ev: Evaluations, hist: I64Array) -> Evaluations:
+        """Count ``ev`` per second in ``hist``; keep those that could be a window's minimum."""
+        if ev.t.size == 0:
+            return ev
+        self._tally(ev.t, hist)
+        if self.window_ns is None:
+            return ev
+        dur = max(int(ev.t.max() - ev.t.min()), NS_PER_S)
+        per_window = ev.t.size / dur * self.window_ns
+        cap = min(1.0, KEEP_FACTOR / max(per_window, 1.0))
+        m = ev.p <= cap
+        return Evaluations(*(getattr(ev, f)[m] for f in _FIELDS))
+
     # -- helpers ----------------------------------------------------------------
+    def _tally(self, t: I64Array, hist: I64Array) -> None:
+        """Add evaluations at times ``t`` to the per-second counts ``hist``."""
+        if t.size:
+            b = np.clip((t - self.block.t_start) // NS_PER_S, 0, self._nbins - 1)
+            hist += np.bincount(b, minlength=self._nbins)
+
     def live_before(self, j: int, x: I64Array) -> I64Array:
         """Live ns of site ``j`` in ``[-inf, x)`` for each x (vectorised)."""
         a, b, cum = self._live[j]
@@ -206,7 +239,13 @@ class TargetedSearch:
         return (full + np.maximum(partial, 0)).astype(np.int64)
 
     def _coincidences(
-        self, trig: CoincidenceTrigger, tab: Tables, t: I64Array, site: np.ndarray, kind: int
+        self,
+        trig: CoincidenceTrigger,
+        tab: Tables,
+        t: I64Array,
+        site: np.ndarray,
+        kind: int,
+        hist: I64Array,
     ) -> Evaluations:
         parts: list[Evaluations] = []
         s32 = np.asarray(site, dtype=np.int32)
@@ -217,19 +256,18 @@ class TargetedSearch:
                 i1 = min(t.size, i0 + SEED_CHUNK)
                 res = trig.evaluate(t, s32, i0, i1, tab, k, p_max=1.0)
                 m = res.seed_idx.size
-                parts.append(
-                    Evaluations(
-                        t[res.seed_idx],
-                        res.p,
-                        np.full(m, kind, np.int64),
-                        np.full(m, w),
-                        s32[res.seed_idx].astype(np.int64),
-                        res.multiplicity,
-                    )
+                ev = Evaluations(
+                    t[res.seed_idx],
+                    res.p,
+                    np.full(m, kind, np.int64),
+                    np.full(m, w),
+                    s32[res.seed_idx].astype(np.int64),
+                    res.multiplicity,
                 )
+                parts.append(ev if kind == KIND_DIRECTED else self._keep(ev, hist))
         return Evaluations.concat(parts)
 
-    def directed(self, direction: Direction) -> Evaluations:
+    def directed(self, direction: Direction, hist: I64Array | None = None) -> Evaluations:
         """The ``directed`` statistic over the whole stretch for one Earth-fixed direction.
 
         Only sites that see the source and whose clocks resolve plane-front delays
@@ -255,12 +293,21 @@ class TargetedSearch:
         colocated.ecef_m = np.zeros_like(colocated.ecef_m)  # delays removed: no light time
         trig = CoincidenceTrigger(colocated, self.coinc_cfg)
         tab = trig.tables(self.rate_hz[idx], self.live_frac[idx], self.ok[idx])
-        ev = self._coincidences(trig, tab, t, s, KIND_DIRECTED)
+        ev = self._coincidences(trig, tab, t, s, KIND_DIRECTED, np.zeros(0, np.int64))
         site = idx[ev.site]
         # report the time back on the un-shifted axis of the seed's site
-        return Evaluations(ev.t - delay[site], ev.p, ev.kind, ev.scale_s, site, ev.multiplicity)
+        o = np.argsort(ev.t - delay[site], kind="stable")
+        back = Evaluations(
+            (ev.t - delay[site])[o],
+            ev.p[o],
+            ev.kind[o],
+            ev.scale_s[o],
+            site[o],
+            ev.multiplicity[o],
+        )
+        return self._keep(back, hist if hist is not None else np.zeros(self._nbins, np.int64))
 
-    def _fronts(self) -> Evaluations:
+    def _fronts(self, hist: I64Array) -> Evaluations:
         """The ``front`` statistic of :mod:`tocsin.engine.front` at its scales, every seed."""
         fs = FrontSearch(self.registry, self.coinc_cfg)
         t, s32 = self.block.t, np.asarray(self.block.site, dtype=np.int32)
@@ -273,16 +320,15 @@ class TargetedSearch:
                 if m == 0:
                     continue
                 w = self.coinc_cfg.front_scales_s[res.scale_index]
-                parts.append(
-                    Evaluations(
-                        t[res.seed_idx],
-                        res.p,
-                        np.full(m, KIND_FRONT, np.int64),
-                        np.full(m, w),
-                        s32[res.seed_idx].astype(np.int64),
-                        res.multiplicity,
-                    )
+                ev = Evaluations(
+                    t[res.seed_idx],
+                    res.p,
+                    np.full(m, KIND_FRONT, np.int64),
+                    np.full(m, w),
+                    s32[res.seed_idx].astype(np.int64),
+                    res.multiplicity,
                 )
+                parts.append(self._keep(ev, hist))
         return Evaluations.concat(parts)
 
     def _counts(self, starts: I64Array, length_ns: int, rng: np.random.Generator) -> Evaluations:
@@ -358,11 +404,14 @@ class TargetedSearch:
         keep[0] = True
         starts = starts[keep]
         tile_live = tile_live[keep]
-        parts = [self.base, self._counts(starts, length, rng)]
+        hist = self.base_hist.copy()
+        counts = self._counts(starts, length, rng)
+        self._tally(counts.t, hist)  # all kept: they are few
+        parts = [self.base, counts]
         stats_used = ["sites", "front", "count_network", "count_site"]
         vis_ids: list[str] | None = None
         if direction is not None:
-            parts.append(self.directed(direction))
+            parts.append(self.directed(direction, hist))
             stats_used.insert(2, "directed")
             vis_ids = [s for s, v in zip(self.registry.ids, direction.visible, strict=True) if v]
         ev = Evaluations.concat(parts)
@@ -373,11 +422,15 @@ class TargetedSearch:
         inside = (tile >= 0) & (ev.t < st_sorted[np.maximum(tile, 0)] + length)
         tile_min = np.ones(starts.size)
         np.minimum.at(tile_min, tile[inside], ev.p[inside])
-        tile_n = np.bincount(tile[inside], minlength=starts.size)
         mins = np.empty(starts.size)
         mins[order] = tile_min
-        n_in = np.empty(starts.size, np.int64)
-        n_in[order] = tile_n
+        # evaluations per window, dropped ones included, from the per-second counts
+        # (whole seconds: a window's count may include up to 2 s of its neighbours',
+        # which only makes the Sidak bounds below more conservative)
+        cum = np.concatenate([[0], np.cumsum(hist)])
+        first = np.clip((starts - self.block.t_start) // NS_PER_S, 0, self._nbins)
+        last = np.clip(-(-(starts + length - self.block.t_start) // NS_PER_S), 0, self._nbins)
+        n_in = cum[last] - cum[first]
         on_min = float(mins[0])
         # Off-source windows must hold background only: one whose own Sidak bound is
         # below SIGNAL_P / (windows + 1) holds an event and is left out (under the null
@@ -393,7 +446,7 @@ class TargetedSearch:
         p_off = (m_lt + u * (m_eq + 1)) / (n_off + 1)
         on_tile = int(np.flatnonzero(order == 0)[0])
         on_sel = inside & (tile == on_tile)
-        n_eval = int(np.sum(on_sel))
+        n_eval = int(n_in[0])
         p_an = float(sidak(on_min, max(n_eval, 1)))
         if n_off == 0 or (m_lt == 0 and p_an < p_off):
             p_final, how = p_an, "analytic"
