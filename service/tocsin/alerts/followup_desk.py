@@ -218,7 +218,8 @@ class FollowupDesk:
         assert ev.time_gps_ns is not None
         before, after = self.window(ev)
         length = before + after
-        half = (self.cfg.offsource_max // 2 + 1) * length
+        cap = round(self.cfg.offsource_hours * 3600 * NS_PER_S) // 2
+        half = min((self.cfg.offsource_max // 2 + 1) * length, max(cap - length // 2, 0))
         lo = max(held_from, ev.time_gps_ns - before - half - self.reach_ns)
         hi = ev.time_gps_ns + after + half + self.reach_ns
         return GpsNs(lo), GpsNs(hi)

@@ -59,7 +59,9 @@ from tocsin.model.registry import SiteRegistry
 from tocsin.types import C_M_PER_NS, NS_PER_S, BoolArray, F64Array, GpsNs, I64Array
 
 SEED_CHUNK = 200_000
-"""Seeds evaluated per call (bounds the memory of the pair search)."""
+"""Seeds evaluated per call of the ``sites`` statistic (bounds the memory of the pair search)."""
+FRONT_CHUNK = 10_000
+"""Seeds per call of the ``front`` statistic (its triples take far more memory per seed)."""
 GUARD_NS = NS_PER_S
 """Windows keep this far (ns) from the ends of the stretch, plus the slots' reach."""
 KEEP_FACTOR = 50.0
@@ -313,8 +315,8 @@ class TargetedSearch:
         t, s32 = self.block.t, np.asarray(self.block.site, dtype=np.int32)
         rates = self.tables.rates_per_ns
         parts: list[Evaluations] = []
-        for i0 in range(0, t.size, SEED_CHUNK // 4):
-            i1 = min(t.size, i0 + SEED_CHUNK // 4)
+        for i0 in range(0, t.size, FRONT_CHUNK):
+            i1 = min(t.size, i0 + FRONT_CHUNK)
             for res in fs.evaluate(t, s32, i0, i1, rates, p_max=1.0):
                 m = res.seed_idx.size
                 if m == 0:

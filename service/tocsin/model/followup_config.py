@@ -10,6 +10,7 @@ Layout (all keys optional; without the table nothing is listened to)::
     directory = ""                      # watched for *.xml packets; "" = none
     buffer_hours = 24.0                 # our own data kept for searching the past
     offsource_max = 200                 # off-source windows per search, at most
+    offsource_hours = 2.0               # data searched around the event (cost: see README)
     max_packet_bytes = 1_000_000
     parse_timeout_s = 5.0
     level = "internal"                  # "public" also sends answers to subscribers
@@ -92,6 +93,10 @@ class FollowupConfig(BaseModel):
     remotes: list[Remote] = []
     buffer_hours: Annotated[float, Field(gt=0.0, le=168.0)] = 24.0
     offsource_max: Annotated[int, Field(ge=0, le=100_000)] = 200
+    """Off-source windows per search, at most."""
+    offsource_hours: Annotated[float, Field(gt=0.0, le=168.0)] = 2.0
+    """Data searched around the event (h, on- and off-source together): the search
+    costs about 2 min per hour of the shipped scenario's data on one core (README)."""
     max_packet_bytes: Annotated[int, Field(ge=1024, le=16_000_000)] = 1_000_000
     parse_timeout_s: Annotated[float, Field(gt=0.0, le=120.0)] = 5.0
     level: str = "internal"
