@@ -56,7 +56,7 @@ def _config(d: Path) -> Path:
 
 
 def _run(
-    tmp: Path, packet: bytes, rec: tuple[Path, Path, dict[str, object]]
+    tmp: Path, packet: bytes, rec: tuple[Path, Path, dict[str, object]], *extra: str
 ) -> tuple[int, dict[str, object]]:
     sites, recording, _ = rec
     p = tmp / "ext.xml"
@@ -75,6 +75,7 @@ def _run(
             "--out",
             str(out),
             "--quiet",
+            *extra,
         ]
     )
     lines = (out / "followups.jsonl").read_text().splitlines() if out.exists() else []
@@ -115,10 +116,12 @@ def test_quiet_moment_gives_upper_limits(
     tmp_path: Path, recording: tuple[Path, Path, dict[str, object]]
 ) -> None:
     start = int(recording[2]["start_gps_ns"])  # type: ignore[call-overload]
-    code, rec = _run(tmp_path, external_packet("Q1", start + 600 * NS_PER_S), recording)
+    code, rec = _run(tmp_path, external_packet("Q1", start + 600 * NS_PER_S), recording, "--plot")
     assert code == 0
     assert rec["outcome"] == "upper_limit"
     assert rec["p_value_calibration"] == "offsource" and int(rec["offsource_windows"]) >= 10  # type: ignore[call-overload]
+    [png] = (tmp_path / "out").glob("fu-*.png")
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert set(rec["upper_limit_90"]) == {
         "fen-a",
         "fen-b",

@@ -19,8 +19,11 @@ import orjson
 from tocsin.alerts.external import ExternalRejected, parse_external
 from tocsin.alerts.followup_desk import FollowupDesk
 from tocsin.alerts.safexml import PacketRejected, XmlLimits
+from tocsin.cli.followup_plot import plot_followup
+from tocsin.cli.progress import Progress
+from tocsin.engine.targeted import TargetedResult
 from tocsin.io.hitring import HitRing
-from tocsin.io.recording import Rejected, read_recording
+from tocsin.io.recording import Rejected, decode_line, open_text
 from tocsin.model.alert_config import load_alert_config
 from tocsin.model.config import load_engine_config
 from tocsin.model.followup_config import load_followup_config
@@ -55,7 +58,8 @@ def add_parser(sub: argparse._SubParsersAction[Any]) -> None:
         help="service config ([engine], [alerts], [followup] tables)",
     )
     p.add_argument("--out", type=Path, default=Path("followup-out"), metavar="DIR")
-    p.add_argument("--quiet", action="store_true", help="no summary on stdout")
+    p.add_argument("--plot", action="store_true", help="also write OUT/<local id>.png")
+    p.add_argument("--quiet", action="store_true", help="no summary or progress")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -92,17 +96,27 @@ def run(args: argparse.Namespace) -> int:
         len(registry), lateness_ns=round(eng.lateness_s * NS_PER_S), quantum_ns=16 * NS_PER_S
     )
     n_rej = 0
-    for item in read_recording(args.recording, registry):
-        if isinstance(item, Rejected):
-            n_rej += 1
-            continue
-        if orderer.offer(item).status == "accepted":
-            blk = orderer.release()
-            if blk is not None:
-                ring.add(blk)
+    progress = Progress(args.recording.stat().st_size, enabled=not args.quiet, label="read")
+    with open_text(args.recording, "rb") as fh:
+        for k, raw in enumerate(fh, start=1):
+            line = raw.strip()
+            if not line:
+                continue
+            item = decode_line(line, registry, line_no=k)
+            if isinstance(item, Rejected):
+                n_rej += 1
+                continue
+            if orderer.offer(item).status == "accepted":
+                blk = orderer.release()
+                if blk is not None:
+                    ring.add(blk)
+            if k % 2000 == 0:
+                progress.update(_raw_pos(fh))
+    progress.done()
     blk = orderer.flush()
     if blk is not None:
         ring.add(blk)
+    result: TargetedResult | None = None
     due = desk.due(ring.t_start, ring.t_end)
     key = ev.ivorn
     has_data = dict(due).get(key)
@@ -113,12 +127,21 @@ def run(args: argparse.Namespace) -> int:
         desk.answer(key, None, note="the event time lies before the start of the recording")
     else:
         lo, hi = desk.span_needed(key, ring.t_start or 0)
-        desk.answer(key, desk.search(key, ring.block(lo, hi)))
+        block = ring.block(lo, hi)
+        if not args.quiet:
+            print(
+                f"searching {block.n_hits:,} hits over {(hi - lo) / NS_PER_S / 3600:.2f} h ...",
+                file=sys.stderr,
+            )
+        result = desk.search(key, block)
+        desk.answer(key, result)
     tracked = desk.tracked[key]
     packet = desk.last_packet
     assert packet is not None
     local = tracked.answers[-1].split("#", 1)[1]
     (out / f"{local}.xml").write_bytes(packet)
+    if args.plot and result is not None:
+        plot_followup(out / f"{local}.png", block, result, ev.ivorn)
     line = (out / "followups.jsonl").read_bytes().splitlines()[-1]
     rec = orjson.loads(line)
     if not args.quiet:
@@ -144,3 +167,11 @@ def run(args: argparse.Namespace) -> int:
         if n_rej:
             print(f"recording lines rejected: {n_rej}", file=sys.stderr)
     return 0
+
+
+def _raw_pos(fh: Any) -> int:
+    raw = getattr(fh, "fileobj", None)
+    try:
+        return int((raw if raw is not None else fh).tell())
+    except (OSError, ValueError):
+        return 0
