@@ -9,7 +9,9 @@ same arrivals give the same blocks and the same candidates.
 from __future__ import annotations
 
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import Any
 
 from tocsin.engine.block import Block
 from tocsin.engine.core import Engine
@@ -35,6 +37,10 @@ class IntakeCounters:
 
 class Pipeline:
     """Validated batches in, merged candidates out."""
+
+    block_sink: Callable[[Block], None] | None = None
+    """Called with every block before the engine sees it (the follow-up ring buffer);
+    not pickled with the pipeline's checkpoint."""
 
     def __init__(
         self,
@@ -123,4 +129,11 @@ class Pipeline:
     def _run(self, block: Block | None) -> list[Candidate]:
         if block is None:
             return []
+        if self.block_sink is not None:
+            self.block_sink(block)
         return self.engine.process(block)
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = dict(self.__dict__)
+        state.pop("block_sink", None)
+        return state

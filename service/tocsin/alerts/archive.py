@@ -203,8 +203,8 @@ class Archive:
     def recent_sent(self, since_gps_ns: int) -> list[tuple[int, str]]:
         """(event GPS ns, level) of queued new/update alerts from ``since_gps_ns`` on, in order."""
         cur = self.db.execute(
-            "SELECT event_gps_ns, level FROM alerts WHERE status = 'queued' AND kind != "
-            "'retraction' AND event_gps_ns >= ? ORDER BY event_gps_ns",
+            "SELECT event_gps_ns, level FROM alerts WHERE status = 'queued' AND kind NOT IN "
+            "('retraction', 'followup') AND event_gps_ns >= ? ORDER BY event_gps_ns",
             (since_gps_ns,),
         )
         return [(int(t), str(lv)) for t, lv in cur.fetchall()]

@@ -25,6 +25,7 @@ COMMANDS: dict[str, str] = {
     "alerts": "tocsin.cli.alerts",
     "retract": "tocsin.cli.retract",
     "tune": "tocsin.cli.tune",
+    "followup": "tocsin.cli.followup",
 }
 
 

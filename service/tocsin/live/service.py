@@ -54,6 +54,7 @@ from tocsin.io.journal import Journal, read_from
 from tocsin.io.recording import decode_line
 from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
+from tocsin.live.followup_wiring import followup_for, start_followup
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
 from tocsin.live.transport import AllowedNetwork, TransportServer
@@ -121,6 +122,7 @@ class Service:
             self.archive, self.packet_dir, topics.alerts_topic(self.root), self.metrics
         )
         self.transport: TransportServer | None = None
+        self.followup = followup_for(self)  # before _restore: the ring takes the journal too
         self.pipeline = self._restore()
         # astropy loads its Earth-orientation tables on the first sky transform (~0.5 s):
         # do it now, not when the first candidate's direction is fitted
@@ -130,6 +132,7 @@ class Service:
     def _restore(self) -> Pipeline:
         ck = checkpoint.load(self.ckpt_path, self.key)
         pipe = ck.pipeline if ck is not None else Pipeline(self.registry, self.cfg.engine)
+        pipe.block_sink = self.followup.ring.add if self.followup is not None else None
         n = 0
         # Without a checkpoint, the last two background stretches rebuild every rate
         # estimate; older journal (months of it) is not needed.
@@ -329,6 +332,7 @@ class Service:
         backoff = 0.5
         self.transport = await self._start_transport()
         deliver = asyncio.create_task(self.dispatcher.run(stop), name="alert-dispatch")
+        fu = start_followup(self, stop)
         try:
             while not stop.is_set():
                 client = self._client()
@@ -341,6 +345,8 @@ class Service:
                         backoff = 0.5
                         await client.subscribe(topics.all_hits_filter(self.root), qos=1)
                         await client.subscribe(topics.all_status_filter(self.root), qos=1)
+                        if self.followup is not None and self.cfg.followup.mqtt:
+                            await client.subscribe(topics.external_topic(self.root), qos=1)
                         self.dispatcher.client = client
                         self.dispatcher.wake.set()
                         try:
@@ -366,6 +372,9 @@ class Service:
                 await deliver
             if self.transport is not None:
                 await self.transport.close()
+            if fu is not None:
+                with contextlib.suppress(asyncio.CancelledError):
+                    await fu
             self.save_checkpoint()
             event(log, "stopped", checkpoint=str(self.ckpt_path))
 
@@ -472,7 +481,9 @@ class Service:
         parsed = topics.site_of(self.root, msg.topic.value)
         payload = msg.payload if isinstance(msg.payload, bytes) else str(msg.payload).encode()
         journaled = False
-        if parsed is None:
+        if self.followup is not None and msg.topic.value == topics.external_topic(self.root):
+            self.followup.offer_nowait(payload, "mqtt")
+        elif parsed is None:
             self._reject(
                 "?", "bad_topic", "<topic>", f"unexpected topic {msg.topic.value!r}", self.clock()
             )

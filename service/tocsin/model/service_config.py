@@ -45,6 +45,7 @@ from tocsin.errors import ConfigError
 from tocsin.live.topics import DEFAULT_ROOT, check_root
 from tocsin.model.alert_config import AlertConfig
 from tocsin.model.config import EngineConfig, read_toml, validation_error
+from tocsin.model.followup_config import FollowupConfig
 
 ENV_URL = "TOCSIN_BROKER_URL"
 ENV_USER = "TOCSIN_BROKER_USERNAME"
@@ -111,6 +112,7 @@ class ServiceConfig(BaseModel):
     metrics: MetricsConfig = MetricsConfig()
     engine: EngineConfig = EngineConfig()
     alerts: AlertConfig = AlertConfig()
+    followup: FollowupConfig = FollowupConfig()
 
 
 def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) -> ServiceConfig:
@@ -140,6 +142,10 @@ def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) 
     if cfg.alerts.directory is not None:
         upd["alerts"] = cfg.alerts.model_copy(
             update={"directory": _rel(base, cfg.alerts.directory)}
+        )
+    if cfg.followup.directory is not None:
+        upd["followup"] = cfg.followup.model_copy(
+            update={"directory": _rel(base, cfg.followup.directory)}
         )
     if cfg.broker is not None:
         b = cfg.broker

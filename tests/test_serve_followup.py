@@ -1,0 +1,168 @@
+"""Follow-up through the live service against a real Mosquitto: hostile packets on the
+external topic are refused and counted, the service keeps running, a valid outside
+alert timed on an injected front is answered with a detection, and a retraction of
+the outside event retracts our answer."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import sqlite3
+import time
+from pathlib import Path
+
+import numpy as np
+import orjson
+import pytest
+
+from tests.extpackets import (
+    AUTHOR_IVORN,
+    BILLION_LAUGHS,
+    EXTERNAL_ENTITY,
+    external_packet,
+    huge_packet,
+    ivorn,
+)
+from tests.livenet import publish_sync, running_service
+from tests.mosquitto import Mosquitto
+from tocsin.alerts.packet import read_alert
+from tocsin.engine.geometry import ellipsoid_up
+from tocsin.engine.sky import ecef_unit_to_radec
+from tocsin.gpstime import gps_now_ns
+from tocsin.model.registry import Site, SiteRegistry
+from tocsin.types import C_M_PER_NS, NS_PER_S
+
+pytestmark = [pytest.mark.broker, pytest.mark.slow]
+
+SITES = [
+    ("fen-a", 46.0, 6.0, 50.0),
+    ("fen-b", 47.5, 8.5, 60.0),
+    ("fen-c", 44.2, 9.8, 40.0),
+    ("fen-d", 45.1, 3.9, 70.0),
+    ("fen-e", 48.3, 5.1, 50.0),
+    ("moor-f", 43.0, 7.0, 2e6),
+]
+RATE_HZ = 3.0
+EXTERNAL = "tocsin/external"
+
+
+def _registry() -> SiteRegistry:
+    return SiteRegistry(
+        [
+            Site(id=i, lat_deg=la, lon_deg=lo, height_m=300.0, clock_sigma_ns=sg)
+            for i, la, lo, sg in SITES
+        ]
+    )
+
+
+def _batches(reg: SiteRegistry, start: int, seconds: int, front: dict[int, int]) -> list[bytes]:
+    """1 s batches of Poisson hits per site, plus one hit per site of ``front``."""
+    rng = np.random.default_rng(7)
+    out = []
+    for k in range(seconds):
+        a, b = start + k * NS_PER_S, start + (k + 1) * NS_PER_S
+        for j, sid in enumerate(reg.ids):
+            t = rng.integers(a, b, rng.poisson(RATE_HZ)).tolist()
+            t += [x for jj, x in front.items() if jj == j and a <= x < b]
+            out.append(
+                orjson.dumps(
+                    {"v": 1, "site": sid, "seq": k, "live": [a, b], "t": sorted(int(x) for x in t)}
+                )
+            )
+    return out
+
+
+def _config(tmp: Path, broker: Mosquitto, reg_path: Path) -> Path:
+    cfg = tmp / "tocsin.toml"
+    cfg.write_text(
+        f'registry = "{reg_path}"\n'
+        f'data_dir = "{tmp / "data"}"\n'
+        "[broker]\n"
+        f'url = "{broker.url}"\n'
+        'client_id = "tocsin-test-service"\n'
+        "[metrics]\nport = 0\n"
+        "[engine.coincidence]\nscales_s = [1e-6, 1e-4, 1e-2]\nfront_scales_s = [1e-6]\n"
+        '[alerts]\nrole = "test"\n'
+        "[followup]\nenabled = true\n"
+        f'authors = ["{AUTHOR_IVORN}"]\n'
+        "max_packet_bytes = 1000000\n"
+        "offsource_max = 50\n"
+        "[followup.windows.gw]\nbefore_s = 10.0\nafter_s = 10.0\n"
+    )
+    return cfg
+
+
+def _wait(pred: object, timeout_s: float, what: str) -> None:
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        with contextlib.suppress(FileNotFoundError, json.JSONDecodeError, KeyError):
+            if pred():  # type: ignore[operator]
+                return
+        time.sleep(0.2)
+    raise TimeoutError(what)
+
+
+def _lines(path: Path) -> list[dict[str, object]]:
+    return [json.loads(x) for x in path.read_text().splitlines() if x.strip()]
+
+
+def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
+    reg = _registry()
+    reg_path = tmp_path / "sites.toml"
+    reg_path.write_text(reg.to_toml())
+    now = gps_now_ns()
+    start = (now // NS_PER_S - 150) * NS_PER_S
+    t_ev = start + 60 * NS_PER_S + 250_000_000
+    n = ellipsoid_up(reg.ecef_m[0])  # a front from the zenith of fen-a
+    front = {j: t_ev - round(float(reg.ecef_m[j] @ n) / C_M_PER_NS) for j in range(5)}
+    ra, dec = ecef_unit_to_radec(n, t_ev)
+    data = tmp_path / "data"
+    svc = running_service(stack, _config(tmp_path, mosquitto, reg_path))
+    publish_sync(mosquitto.port, _batches(reg, start, 145, front))
+    # hostile packets first, through the live intake path
+    publish_sync(
+        mosquitto.port,
+        [(EXTERNAL, BILLION_LAUGHS), (EXTERNAL, EXTERNAL_ENTITY), (EXTERNAL, huge_packet())],
+    )
+    status = data / "followup_status.json"
+    _wait(lambda: sum(json.loads(status.read_text())["packets"].values()) >= 3, 60, "3 refusals")
+    assert json.loads(status.read_text())["packets"] == {"doctype": 2, "too_large": 1}
+    assert svc.proc is not None and svc.proc.poll() is None  # still running
+    # then a valid outside alert timed on the injected front
+    ok = external_packet("S260314a", t_ev, ra_dec_err=(ra, dec, 5.0))
+    publish_sync(mosquitto.port, [(EXTERNAL, ok)])
+    fu = data / "followups.jsonl"
+    _wait(lambda: len(_lines(fu)) >= 1, 120, "a follow-up answer")
+    [ans] = _lines(fu)
+    assert ans["external_ivorn"] == ivorn("S260314a")
+    assert ans["outcome"] == "detection", ans
+    best = ans["best"]
+    assert isinstance(best, dict) and best["statistic"] in ("directed", "front")
+    assert abs(int(best["time_gps_ns"]) - t_ev) < 30_000_000
+    assert json.loads(status.read_text())["packets"] == {
+        "doctype": 2,
+        "too_large": 1,
+        "accepted": 1,
+    }
+    rejected = _lines(data / "external_rejected.jsonl")
+    # (too_large is refused before queueing, so it may be logged first)
+    assert sorted(r["reason"] for r in rejected) == ["doctype", "doctype", "too_large"]
+    # delivered like our own alerts: the packet directory holds it, citing the event
+    ours = str(ans["followup_ivorn"])
+    local = ours.split("#", 1)[1]
+    _wait(lambda: any((data / "alerts").rglob(f"*{local}*.xml")), 30, "packet file")
+    pkt = read_alert(next((data / "alerts").rglob(f"*{local}*.xml")).read_bytes())
+    assert (ivorn("S260314a"), "followup") in pkt.citations
+    # the outside facility withdraws its event: our answer is retracted
+    retr = external_packet("S260314a-x", None, cite=(ivorn("S260314a"), "retraction"))
+    publish_sync(mosquitto.port, [(EXTERNAL, retr)])
+    _wait(lambda: _lines(fu)[-1]["outcome"] == "retracted", 60, "our retraction")
+    con = sqlite3.connect(f"file:{data / 'alerts.sqlite'}?mode=ro", uri=True, timeout=10)
+    try:
+        rows = con.execute("SELECT kind, cites FROM alerts ORDER BY seq").fetchall()
+    finally:
+        con.close()
+    assert ("retraction", ours) in rows
+    assert svc.stop() == 0
