@@ -284,6 +284,7 @@ class FollowupDesk:
                 seq=0,
                 ivorn=ours,
                 candidate_id=tr.family,
+                source_id=tr.family,
                 revision=len(tr.answers) + 1,
                 kind="followup",
                 level=level,
