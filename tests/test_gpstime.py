@@ -135,3 +135,14 @@ def test_far_future_converts_offline_without_raising() -> None:
     assert ns - _utc_seconds_since_gps_epoch("2035-07-01T00:00:00") * NS == 18 * NS + 1
     unexpected = [w for w in caught if not issubclass(w.category, ErfaWarning | AstropyWarning)]
     assert not unexpected, [str(w.message) for w in unexpected]
+
+
+def test_time_to_gps_ns_keeps_nanoseconds() -> None:
+    """Any astropy Time converts to the ns (astropy Time, two-double precision)."""
+    from tocsin.gpstime import time_to_gps_ns
+
+    t = Time("2026-03-14T00:03:00.123456789", format="isot", scale="utc", precision=9)
+    ns = time_to_gps_ns(t)
+    assert ns == utc_to_gps_ns("2026-03-14T00:03:00.123456789Z")
+    assert ns % 1000 == 789  # not truncated to ms
+    assert abs(time_to_gps_ns(t.tt) - ns) <= 1  # the same instant in TT

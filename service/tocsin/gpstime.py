@@ -60,8 +60,14 @@ def utc_to_gps_ns(text: str) -> GpsNs:
 
 
 def time_to_gps_ns(t: Time) -> GpsNs:
-    """Convert any astropy ``Time`` to GPS nanoseconds (rounded to the nearest ns)."""
-    return utc_to_gps_ns(t.utc.isot)
+    """Convert any astropy ``Time`` to GPS nanoseconds (rounded to the nearest ns).
+
+    Goes through TAI as a two-double difference (``Time.isot`` alone would keep only
+    its default three decimals)."""
+    g = t.tai - Time(0.0, format="gps").tai
+    whole = round(float(g.jd1))
+    rest = (float(g.jd1) - whole) + float(g.jd2)
+    return whole * 86400 * NS_PER_S + round(rest * 86400 * NS_PER_S)
 
 
 UNIX_AT_GPS_EPOCH_S = 315_964_800
