@@ -159,3 +159,14 @@ def test_other_seeds_of_one_cluster_join_its_alert_family(tmp_path: Path) -> Non
     # a cluster that shares no hit is a new family
     other = again.consider(front_candidate(far=0.01, t_ns=T0 + 3_000_000_000))
     assert other is not None and other.kind == "new"
+
+
+def test_update_rising_to_public_sends_the_cited_alert_first(tmp_path: Path) -> None:
+    desk = _desk(tmp_path)
+    first = desk.consider(front_candidate(far=50.0))
+    assert first is not None and first.level == "internal"
+    upd = desk.consider(front_candidate(far=0.5, revision=2, cid=first.candidate_id))
+    assert upd is not None and upd.level == "public"
+    assert {d.sink for d in desk.archive.deliveries(first.ivorn)} == {"dir", "mqtt", "vtp:obs-a"}
+    order = [d.ivorn for d, _ in desk.archive.open_deliveries("vtp:")]
+    assert order == [first.ivorn, upd.ivorn]  # the cited alert goes out first

@@ -162,6 +162,14 @@ class Archive:
             )
         return True
 
+    def add_deliveries(self, ivorn: str, sinks: Iterable[str], now_utc: str) -> None:
+        """Queue an archived alert to more sinks (ones it already has are left alone)."""
+        self.db.executemany(
+            "INSERT OR IGNORE INTO deliveries (ivorn, sink, state, updated_utc) "
+            "VALUES (?, ?, 'pending', ?)",
+            [(ivorn, s, now_utc) for s in sinks],
+        )
+
     def mark(
         self, ivorn: str, sink: str, state: DeliveryState, now_utc: str, detail: str = ""
     ) -> None:

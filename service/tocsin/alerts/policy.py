@@ -238,6 +238,12 @@ class AlertDesk:
         sinks = [] if held else self.sinks_for(level)
         if not self.archive.insert_alert(row, sinks, _iso(created)):
             return None
+        if members and not held and level == "public":
+            # subscribers of the public level get the alert this update cites first
+            # (archive order: it goes out before the update)
+            for m in members:
+                if m.status == "queued" and m.kind != "followup":
+                    self.archive.add_deliveries(m.ivorn, self.sinks_for("public"), _iso(created))
         self._remember(family, cand)
         if held:
             self.n_held += 1
