@@ -21,10 +21,9 @@ What runs, per load stage (each in its own temporary directory):
   real :class:`~tocsin.live.agent.Agent` objects: one MQTT connection, one fsynced spool
   and QoS 1 publishing per site, 1 s batches on the GPS grid, fed by a simulated detector
   (``SimSource``, which also emits the injected hits) at ``--rate`` Hz. All agents start
-  their live time on the same whole second and end it on another: the engine models a
-  site's partly live bin as a fraction of the bin, independently of the other sites, so
-  200 sites starting together mid-bin make a burst of hundreds of chance candidates (seen
-  while building this bench; an engine matter, not measured here);
+  their live time on the same whole second and end it on another (kept from when the
+  engine mis-modelled partly live bins shared by many sites; that is fixed and tested in
+  ``tests/test_partial_live.py``);
 * a second MQTT subscriber in this process, which times each batch's arrival at the
   broker: the agents' and broker's share of the latency.
 
