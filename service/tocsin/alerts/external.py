@@ -18,19 +18,13 @@ from typing import Any, Final
 from astropy import units as u
 from astropy.time import Time
 
-from tocsin.alerts.safexml import CheckedVOEvent, XmlLimits, check_voevent
+from tocsin.alerts.safexml import REJECT_REASONS, CheckedVOEvent, XmlLimits, check_voevent
 from tocsin.errors import TocsinError
 from tocsin.gpstime import utc_to_gps_ns
 from tocsin.types import GpsNs
 
 EXTERNAL_REASONS: Final = (
-    "too_large",
-    "doctype",
-    "not_xml",
-    "too_deep",
-    "not_voevent",
-    "not_transport",
-    "schema_invalid",
+    *REJECT_REASONS,
     "timeout",
     "no_time",
     "bad_time",

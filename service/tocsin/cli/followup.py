@@ -20,7 +20,7 @@ from tocsin.alerts.external import ExternalRejected, parse_external
 from tocsin.alerts.followup_desk import FollowupDesk
 from tocsin.alerts.safexml import PacketRejected, XmlLimits
 from tocsin.cli.followup_plot import plot_followup
-from tocsin.cli.progress import Progress
+from tocsin.cli.progress import Progress, raw_position
 from tocsin.engine.targeted import TargetedResult
 from tocsin.io.hitring import HitRing
 from tocsin.io.recording import Rejected, decode_line, open_text
@@ -111,7 +111,7 @@ def run(args: argparse.Namespace) -> int:
                 if blk is not None:
                     ring.add(blk)
             if k % 2000 == 0:
-                progress.update(_raw_pos(fh))
+                progress.update(raw_position(fh))
     progress.done()
     blk = orderer.flush()
     if blk is not None:
@@ -167,11 +167,3 @@ def run(args: argparse.Namespace) -> int:
         if n_rej:
             print(f"recording lines rejected: {n_rej}", file=sys.stderr)
     return 0
-
-
-def _raw_pos(fh: Any) -> int:
-    raw = getattr(fh, "fileobj", None)
-    try:
-        return int((raw if raw is not None else fh).tell())
-    except (OSError, ValueError):
-        return 0

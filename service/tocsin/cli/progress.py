@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import sys
 import time
+from typing import Any
 
 
 class Progress:
@@ -53,3 +54,12 @@ class Progress:
         elif elapsed >= 5.0 and self._last_decile < 10:
             self.update(self.total, force=True)
         sys.stderr.flush()
+
+
+def raw_position(fh: Any) -> int:
+    """Bytes read so far of a (possibly gzip) file: progress through the file on disk."""
+    raw = getattr(fh, "fileobj", None)
+    try:
+        return int((raw if raw is not None else fh).tell())
+    except (OSError, ValueError):
+        return 0

@@ -14,7 +14,7 @@ import orjson
 from tocsin.alerts.archive import Archive
 from tocsin.alerts.outbox import flush_directory
 from tocsin.alerts.policy import AlertDesk
-from tocsin.cli.progress import Progress
+from tocsin.cli.progress import Progress, raw_position
 from tocsin.io.recording import Rejected, decode_line, open_text
 from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
@@ -111,7 +111,7 @@ def run(args: argparse.Namespace) -> int:
                     shown += 1
             emit(pipe.offer(item))
             if k % 2000 == 0:
-                progress.update(_raw_pos(fh))
+                progress.update(raw_position(fh))
         emit(pipe.finish())
     progress.done()
     wall = time.perf_counter() - t0
@@ -123,14 +123,6 @@ def run(args: argparse.Namespace) -> int:
     (out / "summary.json").write_bytes(orjson.dumps(summary, option=orjson.OPT_INDENT_2))
     print(_table(summary))
     return 0
-
-
-def _raw_pos(fh: Any) -> int:
-    raw = getattr(fh, "fileobj", None)
-    try:
-        return int((raw if raw is not None else fh).tell())
-    except (OSError, ValueError):
-        return 0
 
 
 def _rej_obj(r: Rejected) -> dict[str, Any]:
