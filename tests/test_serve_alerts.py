@@ -184,6 +184,10 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
     assert set(alerts) == replayed | {retraction}
     assert read_alert(alerts[retraction]).citations == [(first, "retraction")]
     assert len(done_before) >= 10  # the kill really came in the middle of deliveries
+    print(
+        f"alerts archived {len(alerts)}; MQTT deliveries done before the kill "
+        f"{len(done_before)}; in flight at the kill {sorted(in_flight)}"
+    )
 
     got = asyncio.run(_watch(mosquitto.port, drain_s=3.0))
     counts = Counter(read_alert(p).ivorn for p in got)
@@ -191,6 +195,7 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
     for p in got:
         assert p == alerts[read_alert(p).ivorn]  # byte-identical to the archive
     twice = {i for i, n in counts.items() if n > 1}
+    print(f"MQTT subscriber: {len(got)} packets, {len(counts)} distinct, twice: {sorted(twice)}")
     # none twice, except a packet whose acknowledgement the kill interrupted
     assert twice <= {i for i, s in in_flight if s == "mqtt"}
     assert not twice & done_before
@@ -200,6 +205,10 @@ def test_sigkill_during_alert_burst_delivers_each_alert_once(
     assert watcher.connects >= 2  # it was cut off by the kill and came back
     vtp = Counter(read_alert(p).ivorn for p in watcher.got)
     assert set(vtp) == set(alerts)
+    print(
+        f"transport subscriber: {len(watcher.got)} packets, {len(vtp)} distinct, "
+        f"identical resends dropped {watcher.duplicates}, connections {watcher.connects}"
+    )
     assert max(vtp.values()) == 1
     assert watcher.duplicates <= sum(1 for _, s in in_flight if s == "vtp:watcher")
     for p in watcher.got:
