@@ -3,6 +3,7 @@ the separation check is exact; a slid recording keeps no real coincidence."""
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +14,9 @@ from tocsin.engine.sky import ecef_unit_to_radec, local_up_ecef
 from tocsin.gpstime import utc_to_gps_ns
 from tocsin.model.config import CoincidenceConfig, EngineConfig, ExcessConfig
 from tocsin.sim import build_scenario, parse_injection, simulate, write_recording
+from tocsin.tune import InjectionSettings
 from tocsin.tune.recorded import SiteLive, load_recording
+from tocsin.tune.runner import Job, replay_hits, warmup_s
 from tocsin.tune.slides import (
     displacement_pieces,
     pair_separation_ns,
@@ -157,3 +160,56 @@ def test_a_recording_too_short_for_the_sites_is_refused(
         plan_slides(net, n_slides=1, step_ns=150 * NS_PER_S, guard_ns=101 * NS_PER_S, seed=1)
     with pytest.raises(ValueError, match="must be longer than the longest window"):
         plan_slides(net, n_slides=1, step_ns=50 * NS_PER_S, guard_ns=101 * NS_PER_S, seed=1)
+
+
+def test_network_live_time_is_the_largest_site_live_time_per_bin(
+    fronts_recording: tuple[Path, list[int]],
+) -> None:
+    """The slides' T must be the engine's time base: per 1 s bin the largest live time
+    of any site (engine/coincidence.py, Tables.trial_rates_hz). Checked against a plain
+    loop over bins and intervals, on sites with unaligned batches and shared outages."""
+    path, _ = fronts_recording
+    reg, _ = small_network()
+    net = load_recording(path, reg, QUICK)
+    rng = np.random.default_rng(8)
+    t0 = net.start_ns
+    sites = []
+    for _ in range(3):
+        cuts = np.sort(rng.integers(0, 120 * NS_PER_S, size=80)) + t0
+        start, end = cuts[0::2], cuts[1::2]
+        keep = (end > start) & ~((start > t0 + 50 * NS_PER_S) & (end < t0 + 70 * NS_PER_S))
+        sites.append(SiteLive(np.arange(int(keep.sum())), start[keep], end[keep], start[keep]))
+    sites += [SiteLive(*(np.zeros(0, dtype=np.int64),) * 4)] * (len(net.sites) - 3)
+    fake = dataclasses.replace(net, sites=tuple(sites))
+    bin_ns = NS_PER_S
+    from_ns = t0 + 7 * NS_PER_S + 123_456_789  # mid-bin
+    brute = 0
+    for b in range(from_ns // bin_ns, -(-(t0 + 121 * NS_PER_S) // bin_ns)):
+        lo, hi = max(b * bin_ns, from_ns), (b + 1) * bin_ns
+        per_site = [
+            sum(
+                max(0, min(int(e), hi) - max(int(a), lo))
+                for a, e in zip(s.start, s.end, strict=True)
+            )
+            for s in sites
+        ]
+        brute += max(per_site)
+    assert fake.network_live_ns(from_ns, bin_ns) == brute
+    # shared outages and unaligned batches: less than the wall time, more than none
+    assert 0 < brute < t0 + 120 * NS_PER_S - from_ns
+
+
+def test_replay_searches_only_the_live_time_not_the_closing_horizon(
+    fronts_recording: tuple[Path, list[int]],
+) -> None:
+    """Pipeline.finish runs the clock a horizon past the data (no live time there); the
+    searched time must not count it (it once did: slides then expected ~20 % too many
+    accidentals on a 1 h recording, tests/test_tune.py)."""
+    path, _ = fronts_recording
+    reg, _ = small_network()
+    net = load_recording(path, reg, QUICK)
+    job = Job(net, QUICK, 1e3, InjectionSettings())
+    _, searched, _ = replay_hits(job, None)
+    data_s = (net.end_ns - net.start_ns) / NS_PER_S - warmup_s(QUICK)
+    assert searched <= data_s
+    assert searched >= 0.99 * data_s  # 16 sites: some site is live in every bin

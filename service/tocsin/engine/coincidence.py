@@ -47,8 +47,10 @@ changed by less than ``redundancy_ratio``) is not evaluated and not counted.
 Rates are per second of *network live time*: in a bin where the counted sites
 are live for fractions ``f_s``, R is ``sum_s lambda_s f_s (trials of s) / max_s f_s``
 (:meth:`Tables.trial_rates_hz`). The expected false alarms of the bin are then F
-times its network live time, exactly when the sites share their dead time and
-fewer (the max is below the union of live time) when they do not.
+times its network live time ``max_s f_s`` x bin, whether or not the sites share
+their dead time; a calibration must count its time the same way (``tocsin tune``:
+:meth:`tocsin.tune.recorded.RecordedNetwork.network_live_ns`). Against the union
+of the sites' live time (larger when they do not share it) they are fewer.
 """
 
 from __future__ import annotations

@@ -100,6 +100,33 @@ class RecordedNetwork:
         """Accepted live time per site (ns)."""
         return np.array([s.live_ns for s in self.sites], dtype=np.int64)
 
+    def network_live_ns(self, from_ns: int, bin_ns: int) -> int:
+        """Network live time (ns) from ``from_ns`` on: the engine's time base for false
+        alarm rates (``engine/coincidence.py``, ``engine/excess.py``). Per exposure bin of
+        ``bin_ns`` (GPS-aligned; the bin holding ``from_ns`` counts from ``from_ns``) the
+        largest live time of any site, summed. Time after the data (no site live) adds
+        nothing, so a replay's closing stretch is not counted as searched."""
+        if bin_ns <= 0:
+            raise ValueError(f"bin length {bin_ns} ns must be > 0")
+        ends = [int(s.end[-1]) for s in self.sites if s.end.size]
+        if not ends or max(ends) <= from_ns:
+            return 0
+        b0, b1 = from_ns // bin_ns, -(-max(ends) // bin_ns)
+        edges = np.arange(b0, b1 + 1, dtype=np.int64) * bin_ns
+        edges[0] = from_ns
+        best = np.zeros(edges.size - 1, dtype=np.int64)
+        for s in self.sites:
+            if s.start.size == 0:
+                continue
+            # live time of the site before each edge, exact in integers
+            cum = np.concatenate([[0], np.cumsum(s.end - s.start)]).astype(np.int64)
+            k = np.searchsorted(s.start, edges, side="right") - 1
+            j = np.maximum(k, 0)
+            inside = np.minimum(edges - s.start[j], s.end[j] - s.start[j])
+            before = np.where(k >= 0, cum[j] + inside, 0)
+            best = np.maximum(best, np.diff(before))
+        return int(best.sum())
+
     def mean_rates_hz(self) -> list[float]:
         """Hits per live second of each site over the whole recording (0 for a dead site)."""
         return [int(s.t.size) * NS_PER_S / s.live_ns if s.live_ns > 0 else 0.0 for s in self.sites]

@@ -63,7 +63,8 @@ class RunResult:
     kind: str  # "slide" | "inject"
     index: int
     searched_s: float
-    """Time searched (s): the replayed span minus the rate estimate's warm-up."""
+    """Time searched (s): the network live time (:meth:`RecordedNetwork.network_live_ns`)
+    after the rate estimate's warm-up -- the time base of the engine's false alarm rates."""
     candidates: list[CandRow]
     outcomes: list[Outcome] = field(default_factory=list)
     hits: int = 0
@@ -92,7 +93,8 @@ def replay_hits(
     job: Job, hits: Sequence[I64Array] | None, stop: _Flag | None = None
 ) -> tuple[list[CandRow], float, int]:
     """Run the pipeline over the recording with ``hits`` per site; return the latest
-    revision of every candidate, the searched time (s) and the hits used."""
+    revision of every candidate from the end of the warm-up on, the searched time (s)
+    over the same stretch and the hits used."""
     pipe = Pipeline(
         job.net.registry,
         job.cfg,
@@ -108,8 +110,16 @@ def replay_hits(
     for c in pipe.finish():
         latest[c.id] = c
     eng = pipe.engine
-    span = 0.0 if eng.t_start is None or eng.t_end is None else (eng.t_end - eng.t_start)
-    searched = max(0.0, span / NS_PER_S - warmup_s(job.cfg))
+    # Not the engine's span: Pipeline.finish runs the clock a horizon (~12 min with the
+    # default windows) past the data so the last windows close, and that stretch has no
+    # live time. The engine's FARs are per second of network live time, so that is T.
+    # The engine may start searching before the nominal warm-up ends (its first rate
+    # epoch is 60-120 s in); candidates and time are counted over the same stretch.
+    searched = 0.0
+    from_ns = 0
+    if eng.t_start is not None:
+        from_ns = eng.t_start + round(warmup_s(job.cfg) * NS_PER_S)
+        searched = job.net.network_live_ns(from_ns, eng.bin_ns) / NS_PER_S
     rows = [
         CandRow(
             c.trigger,
@@ -121,6 +131,7 @@ def replay_hits(
             tuple(int(x) for x in c.hit_times_ns),
         )
         for c in latest.values()
+        if c.time_gps_ns >= from_ns
     ]
     return rows, searched, eng.counters.hits
 
