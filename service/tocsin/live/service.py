@@ -292,7 +292,12 @@ class Service:
                 continue
             # archive the alert before the candidate line: a crash between the two
             # writes the line again at restart, and the alert exists once (by IVORN)
-            alert = self.desk.consider(c)
+            try:
+                alert = self.desk.consider(c)
+            except Exception as exc:  # an alert that cannot be made must not stop intake
+                self.metrics.alerts.labels("error", "-", "failed").inc()
+                event(log, "alert_failed", logging.ERROR, id=c.id, error=repr(exc))
+                alert = None
             if alert is not None:
                 self.metrics.alerts.labels(alert.kind, alert.level, alert.status).inc()
                 self.dispatcher.wake.set()
