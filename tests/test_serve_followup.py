@@ -131,12 +131,12 @@ def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
     assert json.loads(status.read_text())["packets"] == {"doctype": 2, "too_large": 1}
     assert svc.proc is not None and svc.proc.poll() is None  # still running
     # then a valid outside alert timed on the injected front
-    ok = external_packet("S260314a", t_ev, ra_dec_err=(ra, dec, 5.0))
+    ok = external_packet("fe-0314-1", t_ev, ra_dec_err=(ra, dec, 5.0))
     publish_sync(mosquitto.port, [(EXTERNAL, ok)])
     fu = data / "followups.jsonl"
     _wait(lambda: len(_lines(fu)) >= 1, 120, "a follow-up answer")
     [ans] = _lines(fu)
-    assert ans["external_ivorn"] == ivorn("S260314a")
+    assert ans["external_ivorn"] == ivorn("fe-0314-1")
     assert ans["outcome"] == "detection", ans
     best = ans["best"]
     assert isinstance(best, dict) and best["statistic"] in ("directed", "front")
@@ -154,9 +154,9 @@ def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
     local = ours.split("#", 1)[1]
     _wait(lambda: any((data / "alerts").rglob(f"*{local}*.xml")), 30, "packet file")
     pkt = read_alert(next((data / "alerts").rglob(f"*{local}*.xml")).read_bytes())
-    assert (ivorn("S260314a"), "followup") in pkt.citations
+    assert (ivorn("fe-0314-1"), "followup") in pkt.citations
     # the outside facility withdraws its event: our answer is retracted
-    retr = external_packet("S260314a-x", None, cite=(ivorn("S260314a"), "retraction"))
+    retr = external_packet("fe-0314-1-x", None, cite=(ivorn("fe-0314-1"), "retraction"))
     publish_sync(mosquitto.port, [(EXTERNAL, retr)])
     _wait(lambda: _lines(fu)[-1]["outcome"] == "retracted", 60, "our retraction")
     con = sqlite3.connect(f"file:{data / 'alerts.sqlite'}?mode=ro", uri=True, timeout=10)
