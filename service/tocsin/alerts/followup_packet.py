@@ -26,6 +26,7 @@ from tocsin.alerts.packet import (
     _finish,
     _p,
     _skeleton,
+    add_where_when,
 )
 from tocsin.engine.targeted import TargetedResult
 from tocsin.gpstime import gps_ns_to_utc_iso
@@ -174,22 +175,10 @@ def _result_params(w: Any, r: TargetedResult) -> None:
 
 def _where_when(v: Any, ext: ExternalEvent) -> None:
     assert ext.time_gps_ns is not None
-    odl = etree.SubElement(v.WhereWhen, "ObsDataLocation")
-    etree.SubElement(odl, "ObservatoryLocation", id="GEOSURFACE")
-    obs = etree.SubElement(odl, "ObservationLocation")
-    etree.SubElement(obs, "AstroCoordSystem", id=SYSTEM_TOPO)
-    coords = etree.SubElement(obs, "AstroCoords", coord_system_id=SYSTEM_TOPO)
-    time_el = etree.SubElement(coords, "Time", unit="s")
-    inst = etree.SubElement(time_el, "TimeInstant")
-    _el(inst, "ISOTime", gps_ns_to_utc_iso(ext.time_gps_ns).rstrip("Z"))
+    pos = None
     if ext.ra_deg is not None and ext.dec_deg is not None:
-        pos = etree.SubElement(coords, "Position2D", unit="deg")
-        _el(pos, "Name1", "RA")
-        _el(pos, "Name2", "Dec")
-        val = etree.SubElement(pos, "Value2")
-        _el(val, "C1", _f(ext.ra_deg))
-        _el(val, "C2", _f(ext.dec_deg))
-        _el(pos, "Error2Radius", _f(ext.err_deg if ext.err_deg is not None else 0.0))
+        pos = (ext.ra_deg, ext.dec_deg, ext.err_deg if ext.err_deg is not None else 0.0)
+    add_where_when(v, ext.time_gps_ns, SYSTEM_TOPO, position=pos)
 
 
 def _summary(

@@ -373,8 +373,23 @@ def _what(v: Any, cand: Candidate, meta: AlertMeta) -> None:
 
 def _where_when(v: Any, cand: Candidate) -> None:
     t_ns, t_err, system = event_time(cand)
-    ww = v.WhereWhen
-    odl = etree.SubElement(ww, "ObsDataLocation")
+    pos = None
+    if cand.ra_deg is not None and cand.dec_deg is not None and cand.err_deg is not None:
+        pos = (cand.ra_deg, cand.dec_deg, cand.err_deg)
+    add_where_when(v, t_ns, system, t_err_s=t_err, position=pos)
+
+
+def add_where_when(
+    v: Any,
+    t_ns: GpsNs,
+    system: str,
+    *,
+    t_err_s: float | None = None,
+    position: tuple[float, float, float] | None = None,
+) -> None:
+    """WhereWhen: the time (UTC, nine decimals, error in s) and an optional
+    (RA deg, Dec deg, 1-sigma error radius deg) in coordinate system ``system``."""
+    odl = etree.SubElement(v.WhereWhen, "ObsDataLocation")
     etree.SubElement(odl, "ObservatoryLocation", id="GEOSURFACE")
     obs = etree.SubElement(odl, "ObservationLocation")
     etree.SubElement(obs, "AstroCoordSystem", id=system)
@@ -382,16 +397,17 @@ def _where_when(v: Any, cand: Candidate) -> None:
     time_el = etree.SubElement(coords, "Time", unit="s")
     inst = etree.SubElement(time_el, "TimeInstant")
     _el(inst, "ISOTime", gps_ns_to_utc_iso(t_ns).rstrip("Z"))
-    if t_err is not None:
-        _el(time_el, "Error", _f(t_err))
-    if cand.ra_deg is not None and cand.dec_deg is not None and cand.err_deg is not None:
+    if t_err_s is not None:
+        _el(time_el, "Error", _f(t_err_s))
+    if position is not None:
+        ra, dec, err = position
         pos = etree.SubElement(coords, "Position2D", unit="deg")
         _el(pos, "Name1", "RA")
         _el(pos, "Name2", "Dec")
         val = etree.SubElement(pos, "Value2")
-        _el(val, "C1", _f(cand.ra_deg))
-        _el(val, "C2", _f(cand.dec_deg))
-        _el(pos, "Error2Radius", _f(cand.err_deg))
+        _el(val, "C1", _f(ra))
+        _el(val, "C2", _f(dec))
+        _el(pos, "Error2Radius", _f(err))
 
 
 def _citations(v: Any, ivorn: str, cite: str, why: str) -> None:
