@@ -36,8 +36,15 @@ def demo_lines() -> list[bytes]:
 
 
 def write_config(
-    tmp: Path, broker: Mosquitto, *, metrics_port: int = 0, max_message_bytes: int = 4_000_000
+    tmp: Path,
+    broker: Mosquitto,
+    *,
+    metrics_port: int = 0,
+    max_message_bytes: int = 4_000_000,
+    extra: str = "",
 ) -> Path:
+    """The service config of a test: registry, data dir, broker, metrics, then ``extra``
+    (more TOML tables)."""
     cfg = tmp / "tocsin.toml"
     cfg.write_text(
         f'registry = "{SITES}"\n'
@@ -47,7 +54,7 @@ def write_config(
         'client_id = "tocsin-test-service"\n'
         f"max_message_bytes = {max_message_bytes}\n"
         "[metrics]\n"
-        f"port = {metrics_port}\n"
+        f"port = {metrics_port}\n" + extra
     )
     return cfg
 

@@ -16,7 +16,14 @@ from pathlib import Path
 import aiomqtt
 import pytest
 
-from tests.livenet import SITES, demo_lines, publish_sync, running_service, wait_journal
+from tests.livenet import (
+    SITES,
+    demo_lines,
+    publish_sync,
+    running_service,
+    wait_journal,
+    write_config,
+)
 from tests.mosquitto import Mosquitto, free_port
 from tocsin.alerts.packet import read_alert
 from tocsin.cli.main import main
@@ -61,24 +68,20 @@ class VtpWatcher(threading.Thread):
 
 
 def _config(tmp: Path, broker: Mosquitto, vtp_port: int) -> Path:
-    cfg = tmp / "tocsin.toml"
-    cfg.write_text(
-        f'registry = "{SITES}"\n'
-        f'data_dir = "{tmp / "data"}"\n'
-        "[broker]\n"
-        f'url = "{broker.url}"\n'
-        'client_id = "tocsin-test-service"\n'
-        "[metrics]\nport = 0\n"
-        "[engine]\ncandidate_far_per_year = 1e7\n"  # many weak candidates: a burst of alerts
-        "[alerts]\n"
-        'role = "test"\n'
-        "internal_far_per_year = 1e9\npublic_far_per_year = 1e9\n"
-        "burst = 1000\nmax_per_hour = 1e6\n"
-        "[alerts.transport]\n"
-        f"port = {vtp_port}\n"
-        'allow = [{ name = "watcher", network = "127.0.0.1/32" }]\n'
+    return write_config(
+        tmp,
+        broker,
+        extra=(
+            "[engine]\ncandidate_far_per_year = 1e7\n"  # many weak candidates: a burst of alerts
+            "[alerts]\n"
+            'role = "test"\n'
+            "internal_far_per_year = 1e9\npublic_far_per_year = 1e9\n"
+            "burst = 1000\nmax_per_hour = 1e6\n"
+            "[alerts.transport]\n"
+            f"port = {vtp_port}\n"
+            'allow = [{ name = "watcher", network = "127.0.0.1/32" }]\n'
+        ),
     )
-    return cfg
 
 
 def _rows(db: Path, sql: str) -> list[tuple[object, ...]]:
