@@ -184,9 +184,9 @@ class AlertDesk:
         obj = cand.to_json_obj()
         self.archive.add_candidate(obj, orjson.dumps(obj))
         level = self.level_of(cand.far_per_year, cand.trigger)
-        family = self._family_of(cand)
         if level is None:
             return None
+        family = self._family_of(cand)
         members = self.archive.alerts_for(family)
         if any(a.kind == "retraction" for a in members):
             return None  # withdrawn by an operator: the cluster stays quiet

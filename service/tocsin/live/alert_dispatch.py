@@ -30,8 +30,8 @@ from typing import Protocol
 import aiomqtt
 
 from tocsin.alerts.archive import Archive
-from tocsin.alerts.outbox import write_packet
-from tocsin.alerts.policy import SINK_DIR, SINK_MQTT, VTP_PREFIX
+from tocsin.alerts.outbox import flush_directory
+from tocsin.alerts.policy import SINK_MQTT, VTP_PREFIX
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
 
@@ -105,25 +105,22 @@ class AlertDispatcher:
         # stopping: the packet directory still gets what was archived last (no
         # network sink is started now; they resume from the archive at the next start)
         try:
-            await self.deliver_once(local_only=True)
+            self._flush_directory()
         except Exception as exc:
             event(log, "dispatch_error", logging.ERROR, error=repr(exc))
 
-    async def deliver_once(self, *, local_only: bool = False) -> int:
-        """One pass over the open deliveries; returns how many were completed or started.
+    def _flush_directory(self) -> int:
+        n = flush_directory(self.archive, self.packet_dir)
+        if n:
+            self.metrics.deliveries.labels("dir", "done").inc(n)
+        return n
 
-        ``local_only``: only the packet directory."""
-        n = 0
+    async def deliver_once(self) -> int:
+        """One pass over the open deliveries; returns how many were completed or started."""
+        n = self._flush_directory()
         connected = set(self.server.connected()) if self.server is not None else set()
         for d, xml in self.archive.open_deliveries():
-            if d.sink == SINK_DIR:
-                write_packet(self.packet_dir, d.ivorn, xml)
-                self.archive.mark(d.ivorn, SINK_DIR, "done", _now())
-                self.metrics.deliveries.labels("dir", "done").inc()
-                n += 1
-            elif local_only:
-                continue
-            elif d.sink == SINK_MQTT:
+            if d.sink == SINK_MQTT:
                 if self.client is None:
                     continue
                 self.archive.mark(d.ivorn, SINK_MQTT, "sent", _now())
