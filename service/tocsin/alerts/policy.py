@@ -41,7 +41,7 @@ from tocsin.errors import TocsinError
 from tocsin.gpstime import gps_ns_to_utc_iso
 from tocsin.model.alert_config import AlertConfig
 from tocsin.model.candidate import Candidate
-from tocsin.types import NS_PER_S, GpsNs
+from tocsin.types import NS_PER_S
 
 SINK_MQTT = "mqtt"
 SINK_DIR = "dir"
@@ -82,29 +82,14 @@ class TokenBucket:
         return False
 
 
-def _hit_keys(cand: Candidate) -> list[tuple[str, int]]:
-    """(site, hit time ns) of a coincidence's hits; empty for an excess."""
-    if not cand.hit_times_ns or len(cand.hit_times_ns) != len(cand.sites):
+def _hit_keys(sites: object, hit_times_ns: object) -> list[tuple[str, int]]:
+    """(site, hit time ns) of a coincidence's hits (from a candidate or its archived
+    JSON); empty for an excess."""
+    if not isinstance(sites, list) or not isinstance(hit_times_ns, list):
         return []
-    return [(s, int(t)) for s, t in zip(cand.sites, cand.hit_times_ns, strict=True)]
-
-
-def _hit_view(obj: dict[str, object]) -> Candidate:
-    """Enough of an archived candidate JSON for :func:`_hit_keys` and its time."""
-    sites = obj.get("sites")
-    hits = obj.get("hit_times_ns")
-    t = obj.get("time_gps_ns")
-    return Candidate(
-        trigger=str(obj.get("trigger", "")),
-        statistic=str(obj.get("statistic", "")),
-        time_gps_ns=GpsNs(int(t) if isinstance(t, int) else 0),
-        window_s=0.0,
-        sites=[str(x) for x in sites] if isinstance(sites, list) else [],
-        p_value=1.0,
-        far_per_year=0.0,
-        hit_times_ns=[GpsNs(int(x)) for x in hits] if isinstance(hits, list) else [],
-        id=str(obj.get("id", "x")),
-    )
+    if not hit_times_ns or len(hit_times_ns) != len(sites):
+        return []
+    return [(str(s), int(t)) for s, t in zip(sites, hit_times_ns, strict=True)]
 
 
 def _utc_now() -> dt.datetime:
@@ -148,7 +133,11 @@ class AlertDesk:
         since = rows[0].event_gps_ns - BUCKET_MEMORY_S * NS_PER_S
         for family, raw in self.archive.recent_families(since):
             obj = orjson.loads(raw)
-            self._remember(family, _hit_view(obj))
+            self._remember(
+                family,
+                int(obj["time_gps_ns"]),
+                _hit_keys(obj.get("sites"), obj.get("hit_times_ns")),
+            )
         for t, level in self.archive.recent_sent(since):
             self.buckets["internal"].take(t)
             if level == "public":
@@ -244,7 +233,7 @@ class AlertDesk:
             for m in members:
                 if m.status == "queued" and m.kind != "followup":
                     self.archive.add_deliveries(m.ivorn, self.sinks_for("public"), _iso(created))
-        self._remember(family, cand)
+        self._remember(family, int(cand.time_gps_ns), _hit_keys(cand.sites, cand.hit_times_ns))
         if held:
             self.n_held += 1
         return self.archive.get(ivorn)
@@ -253,17 +242,16 @@ class AlertDesk:
     def _family_of(self, cand: Candidate) -> str:
         if self.archive.alerts_for(cand.id):
             return cand.id
-        for key in _hit_keys(cand):
+        for key in _hit_keys(cand.sites, cand.hit_times_ns):
             fam = self._by_hit.get(key)
             if fam is not None:
                 return fam
         return cand.id
 
-    def _remember(self, family: str, cand: Candidate) -> None:
-        keys = _hit_keys(cand)
+    def _remember(self, family: str, t: int, keys: list[tuple[str, int]]) -> None:
+        """Remember an alerted cluster's hits (first hit at ``t`` GPS ns) for its family."""
         if not keys:
             return
-        t = int(cand.time_gps_ns)
         for k in keys:
             self._by_hit[k] = family
         self._hits_by_time.append((t, keys))
