@@ -51,4 +51,15 @@ def test_demo_of_the_shipped_recording_gives_replays_ivorns(
         assert f"#{name}" in out
         a = read_alert((live / "data" / "alerts" / f"{name}.xml").read_bytes())
         b = read_alert((tmp_path / "r" / "alerts" / f"{name}.xml").read_bytes())
-        assert a.ivorn == b.ivorn and a.params == b.params  # same candidate, same content
+        assert a.ivorn == b.ivorn  # the acceptance point: same candidate, same IVORN
+        # The demo's service stamps its own arrival times while the recording carries the
+        # original ones, so a batch the recording marks late may be taken live (and move a
+        # rate estimate a little). Everything but the rate-derived numbers is identical;
+        # those agree to 1e-4. (Service vs a replay of its own journal is exact:
+        # tests/test_serve_alerts.py.)
+        derived = {"false_alarm_rate", "p_value", "significance"}
+        assert {k: v for k, v in a.params.items() if k not in derived} == {
+            k: v for k, v in b.params.items() if k not in derived
+        }
+        for k in derived:
+            assert float(a.params[k]) == pytest.approx(float(b.params[k]), rel=1e-4)
