@@ -81,6 +81,9 @@ class ScaleTables:
     """(N, N + 1): P(K > k) for seed site s."""
     point: F64Array
     """(N, N + 1): P(K = k) for seed site s."""
+    hi_counted: I64Array
+    """(N * N,) flat: the slot's upper edge (ns after the seed) where site j counts
+    (``q > 0``), else a value below every lower edge (so nothing falls in it)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -141,6 +144,7 @@ class SlotGeometry:
         self.width = self.hi - self.lo[None, :, :]
         # flat copies, indexed by seed site * N + site (one index for several tables)
         self.lo_flat = self.lo.reshape(-1)
+        self.lo_flat_i = self.lo_flat.astype(np.int64)
         self.hi_flat = [h.reshape(-1) for h in self.hi]
         self.width_flat = [x.reshape(-1) for x in self.width]
         self.back_ns = int(-self.lo.min())
@@ -184,7 +188,7 @@ NO_PREVIOUS_NS = -(2**62)
 """Stands for "no previous hit": far below any GPS time, and differences stay in int64."""
 
 
-def _previous_same_site(t: I64Array, site: I32Array) -> I64Array:
+def previous_same_site(t: I64Array, site: I32Array) -> I64Array:
     """For each hit, the time (GPS ns) of the previous hit of the same site, or
     :data:`NO_PREVIOUS_NS`."""
     order = np.lexsort((t, site))
@@ -249,7 +253,8 @@ class CoincidenceTrigger:
             active = ok & fresh & enough & quiet & sparse & (lam > 0)
             prev_e = np.where(active, e, prev_e)
             tail_gt, point = _null_tables(q, active, e)
-            scales.append(ScaleTables(q, active, tail_gt, point))
+            hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
+            scales.append(ScaleTables(q, active, tail_gt, point, hi_counted.reshape(-1)))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)
         return Tables(lam, tuple(scales), weight, float(np.dot(lam, weight)) * 1e9)
@@ -265,12 +270,15 @@ class CoincidenceTrigger:
         *,
         p_max: float,
         clock: LiveClock | None = None,
+        prev: I64Array | None = None,
     ) -> SeedResult:
         """Evaluate seeds ``t[seed_lo:seed_hi]`` at one scale; keep those with p <= p_max
         and multiplicity >= ``min_multiplicity``. ``t`` must hold every hit within the
         slots of those seeds. ``clock`` gives the sites' live time (offsets in slots
         with dead time are measured on the live clock); None: every site is live
-        throughout."""
+        throughout. ``prev``: for every hit of ``t``, the time (GPS ns) of the previous
+        hit of the same site (:func:`previous_same_site`; any time before ``t[0]`` may
+        stand for "none"), when the caller keeps it; None: computed here."""
         st = tables.scales[scale_index]
         k = scale_index
         seed_pos = np.arange(seed_lo, seed_hi, dtype=np.int64)
@@ -278,67 +286,74 @@ class CoincidenceTrigger:
         empty = np.zeros(0, dtype=np.int64)
         if seed_pos.size == 0:
             return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
+        t_seed = t[seed_pos]
         # Restrict the stream to sites that can count at this scale.
         counts_as_nb = st.q.sum(axis=0) > 0
         # Only the stretch these seeds' slots can reach: a previous hit before it is
         # before every slot start, so "no previous hit" decides the same.
-        i_lo = int(np.searchsorted(t, int(t[seed_pos[0]]) - self.geom.back_ns, side="left"))
-        i_hi = int(np.searchsorted(t, int(t[seed_pos[-1]]) + self.geom.ahead_ns[k], side="right"))
+        i_lo = int(np.searchsorted(t, int(t_seed[0]) - self.geom.back_ns, side="left"))
+        i_hi = int(np.searchsorted(t, int(t_seed[-1]) + self.geom.ahead_ns[k], side="right"))
         sub = i_lo + np.flatnonzero(counts_as_nb[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
-        pr = window_pairs(
-            t_sub, t[seed_pos], back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k]
-        )
-        s_seed = site[seed_pos][pr.seed]
+        pr = window_pairs(t_sub, t_seed, back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k])
         s_nb = s_sub[pr.nb]
-        d = (t_sub[pr.nb] - t[seed_pos][pr.seed]).astype(np.float64)
-        pair = s_seed.astype(np.int64) * self.n_sites + s_nb  # flat (seed site, site) index
-        lo = self.geom.lo_flat.take(pair)
-        hi = self.geom.hi_flat[k].take(pair)
-        # Only the earliest hit of a site in the slot counts: a hit whose site's
-        # previous hit is already inside the slot is not the earliest.
-        prev = _previous_same_site(t_sub, s_sub)
-        keep = (d <= hi) & (d >= lo) & (st.q.reshape(-1).take(pair) > 0)
-        keep &= prev[pr.nb] - t[seed_pos][pr.seed] < lo
-        g_seed, g_nb, s_seed, s_nb, d, lo, pair = (
-            pr.seed[keep],
-            pr.nb[keep],
-            s_seed[keep],
-            s_nb[keep],
-            d[keep],
-            lo[keep],
-            pair[keep],
-        )
+        tp_seed = np.repeat(t_seed, pr.counts)
+        d = t_sub[pr.nb] - tp_seed  # int64 ns
+        pair = np.repeat(site[seed_pos].astype(np.int64) * self.n_sites, pr.counts)
+        pair += s_nb  # flat (seed site, site) index
+        lo = self.geom.lo_flat_i.take(pair)
+        # In the slot of a counted site (hi_counted folds in q > 0) ...
+        keep = d <= st.hi_counted.take(pair)
+        keep &= d >= lo
+        # ... and only the earliest hit of a site in the slot counts: a hit whose
+        # site's previous hit is already inside the slot is not the earliest.
+        prev_sub = previous_same_site(t_sub, s_sub) if prev is None else prev[sub]
+        keep &= prev_sub[pr.nb] - tp_seed < lo
+        ix = np.flatnonzero(keep)
+        g_seed = pr.seed[ix]
+        n_seed = seed_pos.size
+        kk = np.bincount(g_seed, minlength=n_seed)
+        ss = site[seed_pos]
+        # p = P(K > k) + P(K = k) * (Fisher term in [0, 1]) >= P(K > k): only seeds
+        # whose bound can pass need their offsets (most cannot).
+        maybe = (st.tail_gt[ss, kk] <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
+        idx_m = np.flatnonzero(maybe)
+        if idx_m.size == 0:
+            return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
+        ix = ix[maybe[g_seed]]
+        g_seed = pr.seed[ix]
+        g_nb = pr.nb[ix]
+        s_nb = s_nb[ix]
+        lo_m = lo[ix]
+        pair = pair[ix]
         lam = tables.rates_per_ns[s_nb]
         w = self.geom.width_flat[k].take(pair)
-        off = d - lo  # offset into the slot (ns); exact in float64
+        off = (d[ix] - lo_m).astype(np.float64)  # offset into the slot (ns)
         if clock is not None:
             part = clock.partial_sites(
-                int(t[seed_pos[0]]) - self.geom.back_ns,
-                int(t[seed_pos[-1]]) + self.geom.ahead_ns[k] + 1,
+                int(t_seed[0]) - self.geom.back_ns,
+                int(t_seed[-1]) + self.geom.ahead_ns[k] + 1,
             )
             pix = np.flatnonzero(part[s_nb])
             if pix.size:  # on the live clock where the site was dead for a while
-                slot0 = t[seed_pos][g_seed[pix]] + lo[pix].astype(np.int64)
+                slot0 = t_seed[g_seed[pix]] + lo_m[pix]
                 live = clock.live_ns(s_nb[pix].astype(np.int64), slot0, t_sub[g_nb[pix]])
                 off[pix] = live
         u = -np.expm1(-lam * off) / -np.expm1(-lam * w)
         log_u = np.log(np.clip(u, 1e-300, 1.0))
-        n_seed = seed_pos.size
-        kk = np.bincount(g_seed, minlength=n_seed)
-        x = -np.bincount(g_seed, weights=log_u, minlength=n_seed)
-        ss = site[seed_pos]
-        p = st.tail_gt[ss, kk] + st.point[ss, kk] * fisher_combined_sf(-x, kk)
+        x = -np.bincount(g_seed, weights=log_u, minlength=n_seed)[idx_m]
+        km, sm = kk[idx_m], ss[idx_m]
+        p = st.tail_gt[sm, km] + st.point[sm, km] * fisher_combined_sf(-x, km)
         p = np.clip(p, 0.0, 1.0)
-        passing = (p <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
-        idx = np.flatnonzero(passing)
+        idx = idx_m[p <= p_max]
+        p = p[p <= p_max]
         sel = np.isin(g_seed, idx)
         remap = np.full(n_seed, -1, dtype=np.int64)
         remap[idx] = np.arange(idx.size)
         return SeedResult(
             k,
             seed_pos[idx],
-            p[idx],
+            p,
             (kk[idx] + 1).astype(np.int64),
             remap[g_seed[sel]],
             sub[g_nb[sel]].astype(np.int64),

@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from tocsin.engine.block import Block
-from tocsin.engine.coincidence import CoincidenceTrigger, SeedResult, Tables
+from tocsin.engine.coincidence import NO_PREVIOUS_NS, CoincidenceTrigger, SeedResult, Tables
 from tocsin.engine.direction import fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
 from tocsin.engine.exposure import BinStore
@@ -89,6 +89,10 @@ class Engine:
         self.store = BinStore(n, bin_ns=self.bin_ns, capacity=capacity)
         self._t: I64Array = np.zeros(0, dtype=np.int64)
         self._s: I32Array = np.zeros(0, dtype=np.int32)
+        self._prev: I64Array = np.zeros(0, dtype=np.int64)
+        """For each buffered hit, the time (GPS ns) of the previous hit of its site."""
+        self._last_t: I64Array = np.full(n, NO_PREVIOUS_NS, dtype=np.int64)
+        """Time of each site's latest hit so far (GPS ns; NO_PREVIOUS_NS: none)."""
         self._prog: list[GpsNs | None] = [None] * len(self._evals)
         self._tables: dict[tuple[int, bytes], Tables] = {}
         self._bin_tables: dict[int, Tables] = {}
@@ -126,10 +130,26 @@ class Engine:
         if block.t.size:
             self._t = np.concatenate([self._t, block.t])
             self._s = np.concatenate([self._s, block.site])
+            self._prev = np.concatenate([self._prev, self._previous_hits(block)])
         decisions = self._coincidences(block.t_end)
         decisions += self._excesses(block.t_end)
         self._trim()
         return self.merger.add(decisions)
+
+    def _previous_hits(self, block: Block) -> I64Array:
+        """For each hit of ``block``, the time of the previous hit of its site (in the
+        block, else the site's latest before it); updates :attr:`_last_t`."""
+        order = np.lexsort((block.t, block.site))
+        ts, ss = block.t[order], block.site[order]
+        first = np.r_[True, ss[1:] != ss[:-1]]
+        prev_sorted = np.empty(ts.size, dtype=np.int64)
+        prev_sorted[1:] = ts[:-1]
+        prev_sorted[first] = self._last_t[ss[first]]
+        last = np.r_[ss[1:] != ss[:-1], True]
+        self._last_t[ss[last]] = ts[last]
+        out = np.empty(ts.size, dtype=np.int64)
+        out[order] = prev_sorted
+        return out
 
     # ------------------------------------------------------------------
     def _estimate(self, epoch: int) -> RateEstimate:
@@ -213,7 +233,15 @@ class Engine:
                     rates = (b, trial)
                     if stat == "sites":
                         res = self.coinc.evaluate(
-                            self._t, self._s, i0, i1, tab, k, p_max=p_max, clock=clock
+                            self._t,
+                            self._s,
+                            i0,
+                            i1,
+                            tab,
+                            k,
+                            p_max=p_max,
+                            clock=clock,
+                            prev=self._prev,
                         )
                         out += self._coinc_decisions(stat, res, rates, w_s, ahead)
                     else:
@@ -313,3 +341,4 @@ class Engine:
         if cut > 0:
             self._t = self._t[cut:]
             self._s = self._s[cut:]
+            self._prev = self._prev[cut:]

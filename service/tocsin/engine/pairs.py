@@ -21,6 +21,8 @@ class Pairs:
     """Position of the seed in the caller's seed array."""
     nb: I64Array
     """Index of the neighbour hit in the stream."""
+    counts: I64Array
+    """Pairs of each seed (``np.repeat(x, counts)`` spreads a per-seed value over its pairs)."""
 
 
 def window_pairs(
@@ -38,6 +40,7 @@ def window_pairs(
     if total > max_pairs:
         raise MemoryError(f"{total} seed-neighbour pairs exceed the limit of {max_pairs}")
     seed = np.repeat(np.arange(seed_t.size, dtype=np.int64), counts)
-    starts = np.cumsum(counts) - counts
-    nb = left.astype(np.int64)[seed] + (np.arange(total, dtype=np.int64) - starts[seed])
-    return Pairs(seed, nb)
+    # neighbour index = left[seed] + (position of the pair within its seed's run)
+    nb = np.repeat(left.astype(np.int64) - (np.cumsum(counts) - counts), counts)
+    nb += np.arange(total, dtype=np.int64)
+    return Pairs(seed, nb, counts)
