@@ -74,6 +74,8 @@ TICK_EVERY_S = 0.25
 IDLE_TICK_AFTER_S = 10.0
 """After this long (s) of waiting with no message, ticks advance the watermark even
 when the data are behind the wall clock (input stopped)."""
+RELEASE_SLACK_S = 0.002
+"""A boundary tick waits this much (s) past the release boundary it is for."""
 STALL_S = 0.5
 """An iteration of the message loop taking this much (s) beyond a tick is a stall."""
 CHECKPOINT_EVERY_S = 300.0
@@ -252,6 +254,17 @@ class Service:
             return
         self._last_tick = max(self._last_tick, wall)
         self._write(self.pipeline.tick(wall), live=True)
+
+    def release_step(self) -> int:
+        """How many release quanta of the wall clock minus the lateness allowance
+        have begun (the watermark steps by a quantum, normally one bin)."""
+        q = self.pipeline.orderer.quantum_ns
+        return (self.clock() - self.lateness_ns) // q
+
+    def until_release_s(self) -> float:
+        """Wall-clock seconds until :meth:`release_step` next increases."""
+        q = self.pipeline.orderer.quantum_ns
+        return (q - (self.clock() - self.lateness_ns) % q) / NS_PER_S
 
     def refresh_gauges(self) -> None:
         """Processing lag and per-site rate estimates (called about once a second)."""
@@ -437,8 +450,12 @@ class Service:
         # computation anywhere in it), messages may wait in the socket or the
         # client while our queue looks empty: ticks pause until a wait of a full
         # TICK_EVERY_S passes with nothing arriving. ``quiet`` adds up such waits.
+        # Besides every TICK_EVERY_S, a tick falls just after the wall clock takes the
+        # watermark across a release boundary (the end of a bin plus the lateness
+        # allowance): the bin's windows close then, not when the next batch arrives.
         stalled = False
         quiet = 0.0
+        tick_step = self.release_step()
         try:
             while True:
                 if stop.is_set():
@@ -447,13 +464,15 @@ class Service:
                     break
                 t_wait = time.monotonic()
                 try:
-                    msg = await asyncio.wait_for(queue.get(), TICK_EVERY_S)
+                    timeout = min(TICK_EVERY_S, self.until_release_s() + RELEASE_SLACK_S)
+                    msg = await asyncio.wait_for(queue.get(), timeout)
                     self._dispatch(client, msg, pending)
                     quiet = 0.0
                 except TimeoutError:
                     waited = time.monotonic() - t_wait
                     if waited < TICK_EVERY_S + STALL_S:
-                        stalled = False
+                        if waited >= TICK_EVERY_S:
+                            stalled = False
                         quiet += waited
                     else:  # the loop was held up during the wait itself
                         stalled = True
@@ -463,9 +482,12 @@ class Service:
                 if pending and (now - last_sync >= SYNC_EVERY_S or len(pending) >= 1000):
                     self._sync_and_ack(client, pending)
                     last_sync = now
-                if queue.empty() and not stalled and now - last_tick >= TICK_EVERY_S:
+                step_now = self.release_step()
+                due = now - last_tick >= TICK_EVERY_S or step_now > tick_step
+                if queue.empty() and not stalled and due:
                     self.tick(quiet)
                     last_tick = now
+                    tick_step = step_now
                 if now - last_gauges >= 1.0:
                     self.refresh_gauges()
                     last_gauges = now
