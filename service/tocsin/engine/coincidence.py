@@ -106,7 +106,10 @@ class Tables:
         (shape (N, bins); one value per bin)."""
         f = np.where(self.rates_per_ns[:, None] > 0, np.clip(live_frac, 0.0, 1.0), 0.0)
         f_net = f.max(axis=0) if f.shape[0] else np.zeros(f.shape[1])
-        num = (self.rates_per_ns * self.seed_weight) @ f * 1e9
+        # each bin's sum on its own contiguous row, so its rounding is the same whichever
+        # bins it is computed with (a matrix product's can depend on how many there are)
+        terms = np.ascontiguousarray((f * (self.rates_per_ns * self.seed_weight)[:, None]).T)
+        num = terms.sum(axis=1) * 1e9
         out: F64Array = np.where(f_net > 0.0, num / np.where(f_net > 0.0, f_net, 1.0), 0.0)
         return out
 

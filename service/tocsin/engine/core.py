@@ -214,11 +214,16 @@ class Engine:
             if limit <= start:
                 self._prog[e] = start
                 continue
-            b = start // self.bin_ns
-            while b * self.bin_ns < limit:
+            # Only bins holding seeds need tables: stretches without hits (gaps, the
+            # time after the end of the data) are stepped over.
+            i_first = int(np.searchsorted(self._t, start, side="left"))
+            i_stop = int(np.searchsorted(self._t, limit, side="left"))
+            last_b = int(self._t[i_stop - 1]) // self.bin_ns if i_stop > i_first else -1
+            b = int(self._t[i_first]) // self.bin_ns if i_stop > i_first else 0
+            while b <= last_b:
                 tab = self._tables_for_bin(b)
                 b_end = b + 1
-                while b_end * self.bin_ns < limit and self._tables_for_bin(b_end) is tab:
+                while b_end <= last_b and self._tables_for_bin(b_end) is tab:
                     b_end += 1
                 lo_t = max(start, b * self.bin_ns)
                 hi_t = min(limit, b_end * self.bin_ns)
@@ -252,6 +257,9 @@ class Engine:
                             w_f = self.cfg.coincidence.front_scales_s[fr.scale_index]
                             out += self._coinc_decisions(stat, fr, rates, w_f, ahead)
                 b = b_end
+                if b <= last_b:  # on to the next bin with a hit
+                    i_next = int(np.searchsorted(self._t, b * self.bin_ns, side="left"))
+                    b = max(b, int(self._t[i_next]) // self.bin_ns)
             self._prog[e] = limit
         return out
 
