@@ -30,6 +30,12 @@ live part is at most ``2 δ_l``, so ``ρ_l`` stays an upper bound). The closenes
 ``u_l`` below assumes the narrow slot (nanoseconds to microseconds) fully live;
 a live-interval edge inside it is a chance of ~1e-6 per hit and is ignored.
 
+Scales: a front scale ``W`` is evaluated for a seed site only while ``W`` is below
+the longest light time from it to another eligible site. A wider tolerance makes
+every partner's narrow slot about as wide as its whole slot, so the front adds
+nothing to the ``sites`` count at that scale (and with many chance hits in its
+slots the search costs ~100x more); such (site, scale) are not trials.
+
 Within a multiplicity, closer fits rank higher: ``u_l = |residual_l| / δ_l`` is
 uniform under the null, and ``p = P(M >= m+1) + P(M = m) P(Gamma(m-3) >= -sum ln u)``.
 Calibration is checked against simulated background (``tests/test_calibration.py``).
@@ -44,7 +50,7 @@ from numpy.typing import NDArray
 
 from tocsin.engine.coincidence import SeedResult, SlotGeometry
 from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
-from tocsin.engine.geometry import ellipsoid_up
+from tocsin.engine.geometry import ellipsoid_up, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import (
@@ -156,6 +162,20 @@ class FrontSearch:
         self.back_ns = int(-self.lo[pair_el].min()) if pair_el.any() else 0
         self.ahead_ns = [int(h[pair_el].max()) if pair_el.any() else 0 for h in self.hi]
         max_sig = float(self.sigma[el].max()) if el.any() else 0.0
+        # A front scale no narrower than every light time from a seed site leaves
+        # the front no constraint beyond the sites count (each partner's narrow slot
+        # is then about as wide as its whole slot): such (seed site, scale) are not
+        # evaluated and not trials. Decided from geometry alone, so the null holds.
+        light = np.where(pair_el, pair_light_time_ns(registry.ecef_m), 0.0)
+        self.reach_ns: F64Array = light.max(axis=1)
+        """(N,) longest light time (ns) from each site to another front-eligible site."""
+        self.scale_active: BoolArray = el[None, :] & (
+            self.scales_ns[:, None].astype(np.float64) < self.reach_ns[None, :]
+        )
+        """(F, N): front scale f is evaluated for seeds of site s."""
+        # scales are sorted, so a site's active scales are the first few
+        self.widest: I64Array = self.scale_active.sum(axis=0).astype(np.int64) - 1
+        """(N,) index of each site's widest active front scale (-1: none)."""
         self._up_soa = [np.ascontiguousarray(self.up[:, c]) for c in range(3)]
         self._tol_base = cfg.clock_sigmas * max_sig
 
@@ -165,9 +185,10 @@ class FrontSearch:
 
         The front p-value is conditional on the seed's neighbour hits and is 1
         when fewer than three other sites are in its slots, so only seeds with
-        three or more count as trials: per front scale, the Poisson-binomial
-        probability of >= 3 occupied slots, with every counted site (rate > 0)
-        live over its whole slot (an upper bound at the edges of live time).
+        three or more count as trials: per front scale active for the seed site
+        (:attr:`scale_active`), the Poisson-binomial probability of >= 3 occupied
+        slots, with every counted site (rate > 0) live over its whole slot (an upper
+        bound at the edges of live time).
         """
         out = np.zeros(self.n_sites)
         use = self.eligible & (rates_per_ns > 0)
@@ -175,10 +196,13 @@ class FrontSearch:
             return out
         lam = np.where(use, rates_per_ns, 0.0)
         for k in range(self.scales_ns.size):
+            rows = use & self.scale_active[k]
+            if not rows.any():
+                continue
             width = self.hi[k] - self.lo
             q = -np.expm1(-lam[None, :] * width)
-            q = np.where(use[None, :] & ~np.eye(self.n_sites, dtype=bool), q, 0.0)[use]
-            out[use] += poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
+            q = np.where(use[None, :] & ~np.eye(self.n_sites, dtype=bool), q, 0.0)[rows]
+            out[rows] += poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
         return out
 
     def evaluate(
@@ -202,12 +226,37 @@ class FrontSearch:
         empty = np.zeros(0, dtype=np.int64)
         none = [SeedResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
         seed_pos = np.arange(seed_lo, seed_hi, dtype=np.int64)
-        seed_pos = seed_pos[use[site[seed_pos]]]
+        seed_pos = seed_pos[use[site[seed_pos]] & (self.widest[site[seed_pos]] >= 0)]
         if seed_pos.size == 0 or use.sum() < 4 or n_f == 0:
             return none
-        wide = n_f - 1
+        # Seeds grouped by their site's widest active scale: triples are solved at
+        # that scale's slots, and only the scales up to it are evaluated.
+        wides = self.widest[site[seed_pos]]
+        groups = np.unique(wides)
+        if groups.size == 1:
+            return self._evaluate_wide(t, site, seed_pos, int(groups[0]), use, p_max, clock)
+        parts = [
+            self._evaluate_wide(t, site, seed_pos[wides == w], int(w), use, p_max, clock)
+            for w in groups
+        ]
+        return [_concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+
+    def _evaluate_wide(
+        self,
+        t: I64Array,
+        site: I32Array,
+        seed_pos: I64Array,
+        wide: int,
+        use: BoolArray,
+        p_max: float,
+        clock: LiveClock | None,
+    ) -> list[SeedResult]:
+        """:meth:`evaluate` for seeds ``seed_pos`` whose widest active scale is ``wide``."""
+        n_f = self.scales_ns.size
+        empty = np.zeros(0, dtype=np.int64)
+        none = [SeedResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
         i_lo = int(np.searchsorted(t, int(t[seed_pos[0]]) - self.back_ns, side="left"))
-        i_hi = int(np.searchsorted(t, int(t[seed_pos[-1]]) + self.ahead_ns[-1], side="right"))
+        i_hi = int(np.searchsorted(t, int(t[seed_pos[-1]]) + self.ahead_ns[wide], side="right"))
         sub = i_lo + np.flatnonzero(use[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
         t_seed = t[seed_pos]
@@ -243,7 +292,19 @@ class FrontSearch:
             if sel_c.size:
                 parts.append(
                     self._evaluate_seeds(
-                        sel_c, g, nbi, sn, d, rank, seed_pos, t_seed, s_seed_all, sub, p_max, clock
+                        sel_c,
+                        g,
+                        nbi,
+                        sn,
+                        d,
+                        rank,
+                        seed_pos,
+                        t_seed,
+                        s_seed_all,
+                        sub,
+                        p_max,
+                        clock,
+                        wide,
                     )
                 )
         return [_concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
@@ -262,12 +323,12 @@ class FrontSearch:
         sub: I64Array,
         p_max: float,
         clock: LiveClock | None,
+        wide: int,
     ) -> list[SeedResult]:
-        """The front statistic at every scale for seeds ``cand`` (positions in
+        """The front statistic at scales 0 .. ``wide`` for seeds ``cand`` (positions in
         ``seed_pos``) from their neighbour hits (flat ``g``, ``nbi``, ... as built by
-        :meth:`evaluate`)."""
+        :meth:`evaluate`); the wider scales' results are empty."""
         n_f = self.scales_ns.size
-        wide = n_f - 1
         k_sig = self.cfg.clock_sigmas
         empty = np.zeros(0, dtype=np.int64)
         none = [SeedResult(f, empty, np.zeros(0), empty, empty, empty) for f in range(n_f)]
@@ -383,6 +444,9 @@ class FrontSearch:
         )
         out: list[SeedResult] = []
         for f in range(n_f):
+            if f > wide:
+                out.append(none[f])
+                continue
             tol_f = self._tol_base + float(self.scales_ns[f])
             trip_ok = excess_norm <= C_M_PER_NS * tol_f * xy / np.maximum(norm0, 1e-300)
             hi_f = self.hi[f][seed_site[:, None], nsite]
