@@ -134,7 +134,19 @@ class Engine:
         decisions = self._coincidences(block.t_end)
         decisions += self._excesses(block.t_end)
         self._trim()
-        return self.merger.add(decisions)
+        out = self.merger.add(decisions)
+        # Directions only for what is written: the merger drops most decisions of a
+        # cluster (other scales and statistics of the same seed), and it does not
+        # look at directions, so fitting after it gives the same candidates.
+        for cand in out:
+            if (
+                cand.trigger == "coincidence"
+                and cand.ra_deg is None
+                and cand.far_per_year <= DIRECTION_MAX_FAR_PER_YEAR
+            ):
+                sites = np.array([self.registry.index(x) for x in cand.sites], dtype=np.int64)
+                self._add_direction(cand, sites, np.array(cand.hit_times_ns, dtype=np.int64))
+        return out
 
     def _previous_hits(self, block: Block) -> I64Array:
         """For each hit of ``block``, the time of the previous hit of its site (in the
@@ -296,8 +308,6 @@ class Engine:
                 hit_times_ns=t_hits,
                 details={"trial_rate_hz": trial_hz},
             )
-            if far <= DIRECTION_MAX_FAR_PER_YEAR:
-                self._add_direction(cand, np.asarray(s_hits), self._t[idx])
             ready = max(t_seed + ahead, (t_seed // self.bin_ns + 1) * self.bin_ns)
             # Merged only with decisions from the same seed hit (other scales and
             # statistics): a chain of seeds inside one cluster are separate trials in
