@@ -31,18 +31,14 @@ The network: ``--sites`` (200) GPS-timed scintillators (clock sigma 10-50 ns, 3 
 ~500 Hz of muons each) on a jittered grid ``--spacing-m`` (350 m) apart on an invented high
 plateau: a dense ground array, ~5 km across. 200 x 500 Hz = 100,000 hits/s offered.
 
-The engine configuration: the defaults except two lists, printed with their cost. (1)
-``scales_s`` = [1e-6, 1e-5, 1e-4] (``--scales``): at this load the default scales from
-1 ms to 100 s hold more than ``max_expected_neighbours`` chance hits per seed, so the
-engine never evaluates them (same active scales, same trial rate, printed) -- but each
-scale's evaluator still holds its slots' hits, so the default 100 s scale keeps ~100 s of
-hits (10 million) in the engine's buffer, which ``CoincidenceTrigger.evaluate`` re-sorts
-at every call (2-3 s per 1 s block, printed). (2) ``front_scales_s`` = [1e-6]
-(``--front-scales``): at 100,000 hits/s every seed has ~10 chance hits within the default
-widest front scale (100 us), so the front search tries all 12 neighbours (66 pairs, two
-mirror solutions each) for every hit: ~200 us per seed, so one core gets through ~5,000
-hits/s (printed). A dense array's front crosses it within microseconds, and the 1 us front
-scale costs ~4 us per seed. ``default`` runs the shipped lists.
+The engine configuration: the shipped defaults (``--scales`` and ``--front-scales``
+take other lists), printed with their cost at this load. Of the coincidence scales only
+1 us and 100 us are evaluated at 100,000 hits/s (the others hold more than
+``max_expected_neighbours`` chance hits per seed, or repeat a smaller scale), but the
+100 s scale's evaluator still keeps 100 s of hits (10 million) in the engine's buffer.
+Of the front scales, 100 us is wider than every light time across this ~7 km array, so
+it is not evaluated (``FrontSearch.scale_active``; evaluated, it would cost ~150 us per
+seed here: ~10 chance hits in every seed's slots, 66 pairs, two mirror solutions each).
 
 Warm-up: the engine judges coincidences only with rate estimates from at least 60 s of
 live time before the current 60 s rate epoch. Rather than wait ~2 minutes, the bench
@@ -724,7 +720,11 @@ def configuration_report(reg: SiteRegistry, bench: CoincidenceConfig, rate_hz: f
     out.append(f"  'sites' statistic, one 1 s block of seeds at {min(bench.scales_s):g} s: "
                f"{c_short:.2f} s with a 1 s hit buffer, {c_long:.2f} s with {longest + 1} s (the "
                f"default {longest} s scale keeps its slots' hits in the engine's buffer even when "
-               "inactive, and evaluate() sorts the whole buffer)")
+               "inactive)")
+    fs = FrontSearch(reg, bench)
+    act = [w for w, on in zip(bench.front_scales_s, fs.scale_active, strict=True) if on.any()]
+    out.append(f"  front scales evaluated on this array {act} (longest light time from a site "
+               f"{fs.reach_ns.min() / 1e3:.1f}-{fs.reach_ns.max() / 1e3:.1f} us)")
     n_seeds = 1000
     f_bench = front_cost_s(reg, bench, rate_hz, n_seeds, rng)
     f_def = front_cost_s(reg, CoincidenceConfig(), rate_hz, n_seeds, rng)
@@ -1042,11 +1042,11 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     p.add_argument("--settle", type=float, default=8.0, help="agents' start-up, s (8)")
     p.add_argument("--agent-procs", type=int, default=2, help="agent worker processes (2)")
     p.add_argument("--spacing-m", type=float, default=350.0, help="grid spacing, m (350)")
-    p.add_argument("--scales", default="1e-6,1e-5,1e-4",
-                   help="engine coincidence scales, s, comma-separated, or 'default' "
-                        "(1e-6,1e-5,1e-4)")
-    p.add_argument("--front-scales", default="1e-6",
-                   help="engine front scales, s, comma-separated, or 'default' (1e-6)")
+    p.add_argument("--scales", default="default",
+                   help="engine coincidence scales, s, comma-separated, or 'default' (the "
+                        "engine's)")
+    p.add_argument("--front-scales", default="default",
+                   help="engine front scales, s, comma-separated, or 'default' (the engine's)")
     p.add_argument("--front-sites", type=int, default=16, help="sites per injected shower")
     p.add_argument("--inject-every", type=float, default=10.0, help="s between showers (10)")
     p.add_argument("--ramp", default="0.5,0.25",
