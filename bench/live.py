@@ -620,7 +620,7 @@ class EngineAlone:
     shower_block_s: float
     """Seconds for the next block, also holding a shower."""
     shower_decisions: int
-    """Coincidence decisions that block made (each with a direction fit)."""
+    """Coincidence decisions that block made (merged into candidates, then fitted)."""
     shower_candidates: int
     n_front: int
 
@@ -1012,7 +1012,7 @@ def stage_detail(s: Stage) -> str:
         f"p90 {q(s.latency, 90):.3f}, p99 {q(s.latency, 99):.3f}, max "
         f"{max(s.latency, default=math.nan):.3f} s; service histogram over the window: "
         f"p50 {hq[0]:.2f}, p90 {hq[1]:.2f}, p99 {hq[2]:.2f} s (bucket edges "
-        f"{', '.join(f'{e:g}' for e, _ in sorted(s.hist)[4:9])} s)",
+        f"{', '.join(f'{e:g}' for e, _ in sorted(s.hist) if 2.0 <= e <= 5.0)} s)",
         f"  injected showers {s.showers}, found as candidates {s.found}; candidates in the "
         f"window {s.candidates}; each shower's first candidate after "
         f"{', '.join(f'{x:.2f}' for x in s.per_shower)} s",
@@ -1021,8 +1021,9 @@ def stage_detail(s: Stage) -> str:
            f"them): {s.engine.hits_per_s:,.0f} hits/s = {s.engine.hits_per_s / s.offered:.2f}x "
            f"this load, {s.engine.block_s:.2f} s per block; a block with one "
            f"{s.engine.n_front}-site shower {s.engine.shower_block_s:.2f} s "
-           f"({s.engine.shower_decisions} coincidence decisions, each with a direction fit, "
-           f"-> {s.engine.shower_candidates} candidates; the first such block "
+           f"({s.engine.shower_decisions} coincidence decisions "
+           f"-> {s.engine.shower_candidates} candidates, each with a direction fit; the first "
+           f"such block "
            f"{s.engine.first_shower_block_s:.2f} s)" if s.engine else ""),
     ]
     if s.aborted:
