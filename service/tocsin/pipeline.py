@@ -49,12 +49,16 @@ class Pipeline:
         *,
         candidate_far_per_year: float | None = None,
         release_every_s: float | None = None,
+        threads: int = 1,
     ) -> None:
         """``release_every_s``: how often data goes to the engine (default: every
         exposure bin, for the lowest latency). Replay uses longer blocks for speed;
-        the engine's output does not depend on block length."""
+        the engine's output does not depend on block length, nor on ``threads``
+        (the engine's, see :class:`~tocsin.engine.core.Engine`)."""
         self.registry = registry
-        self.engine = Engine(registry, cfg, candidate_far_per_year=candidate_far_per_year)
+        self.engine = Engine(
+            registry, cfg, candidate_far_per_year=candidate_far_per_year, threads=threads
+        )
         self.orderer = Orderer(
             len(registry),
             lateness_ns=round(cfg.lateness_s * NS_PER_S),

@@ -15,6 +15,7 @@ from tocsin.alerts.archive import Archive
 from tocsin.alerts.outbox import flush_directory
 from tocsin.alerts.policy import AlertDesk
 from tocsin.cli.progress import Progress, raw_position
+from tocsin.engine.core import default_threads
 from tocsin.io.recording import Rejected, decode_line, open_text
 from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
@@ -56,6 +57,12 @@ def add_parser(sub: Any) -> None:
     )
     p.add_argument("--out", type=Path, required=True, help="output directory (created)")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no per-line reports")
+    p.add_argument(
+        "--threads",
+        type=int,
+        default=None,
+        help="engine threads (default: the cores available, at most 4; same results)",
+    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -66,8 +73,14 @@ def run(args: argparse.Namespace) -> int:
     registry = SiteRegistry.from_toml(args.sites)
     cfg = load_engine_config(args.config)
     alert_cfg = load_alert_config(args.config)
+    if args.threads is not None and args.threads < 1:
+        raise ValueError(f"--threads {args.threads!r} must be >= 1")
     pipe = Pipeline(
-        registry, cfg, candidate_far_per_year=args.candidate_far, release_every_s=REPLAY_BLOCK_S
+        registry,
+        cfg,
+        candidate_far_per_year=args.candidate_far,
+        release_every_s=REPLAY_BLOCK_S,
+        threads=args.threads or default_threads(),
     )
     out: Path = args.out
     out.mkdir(parents=True, exist_ok=True)

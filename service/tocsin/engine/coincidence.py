@@ -130,6 +130,33 @@ class SeedResult:
     hit of each counted site; ``front``: the partners and consistent hits)."""
 
 
+def concat_results(scale_index: int, parts: list[SeedResult]) -> SeedResult:
+    """One scale's results of several seed groups (disjoint), ordered by seed as one call
+    over all of them gives."""
+    empty = np.zeros(0, dtype=np.int64)
+    parts = [r for r in parts if r.seed_idx.size]
+    if not parts:
+        return SeedResult(scale_index, empty, np.zeros(0), empty, empty, empty)
+    if len(parts) == 1:
+        return parts[0]
+    seeds = np.concatenate([r.seed_idx for r in parts])
+    offs = np.cumsum([0] + [r.seed_idx.size for r in parts[:-1]])
+    nb_seed = np.concatenate([r.nb_seed + o for r, o in zip(parts, offs, strict=True)])
+    nb_idx = np.concatenate([r.nb_idx for r in parts])
+    order = np.argsort(seeds, kind="stable")
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    nb_order = np.argsort(rank[nb_seed], kind="stable")
+    return SeedResult(
+        scale_index,
+        seeds[order],
+        np.concatenate([r.p for r in parts])[order],
+        np.concatenate([r.multiplicity for r in parts])[order],
+        rank[nb_seed][nb_order],
+        nb_idx[nb_order],
+    )
+
+
 class SlotGeometry:
     """Forward slot bounds (ns, relative to the seed) per scale and site pair:
     ``lo`` (N, N) = -k sigma_sj and ``hi`` (S, N, N) = light time + k sigma_sj + W."""

@@ -9,12 +9,22 @@ replay and tuning agree exactly.
 from __future__ import annotations
 
 import math
+import os
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from functools import partial
 
 import numpy as np
 
 from tocsin.engine.block import Block
-from tocsin.engine.coincidence import NO_PREVIOUS_NS, CoincidenceTrigger, SeedResult, Tables
+from tocsin.engine.coincidence import (
+    NO_PREVIOUS_NS,
+    CoincidenceTrigger,
+    SeedResult,
+    Tables,
+    concat_results,
+)
 from tocsin.engine.direction import fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
 from tocsin.engine.exposure import BinStore
@@ -32,6 +42,31 @@ MAX_REPORTED_ERR_DEG = 60.0
 DIRECTION_MAX_FAR_PER_YEAR = 1.0e4
 """Directions are fitted for candidates at or below this FAR (about one an hour);
 weaker ones (seen only with a loose ``--candidate-far``) skip the ~4 ms fit."""
+PARALLEL_MIN_SEEDS = 20_000
+"""A stretch of seeds is split over threads only into parts at least this long (a
+thread's start and the neighbour search around each part cost something)."""
+_POOLS: dict[int, ThreadPoolExecutor] = {}
+
+
+def default_threads() -> int:
+    """Engine threads when none are asked for: the cores this process may use, at
+    most 4 (beyond that the per-part overhead eats the gain at typical block sizes)."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(4, cores))
+
+
+def _pool(threads: int) -> ThreadPoolExecutor:
+    """A process-wide pool of ``threads`` workers (numpy releases the GIL in the
+    array operations that dominate an evaluation)."""
+    pool = _POOLS.get(threads)
+    if pool is None:
+        pool = _POOLS[threads] = ThreadPoolExecutor(threads, thread_name_prefix="tocsin-engine")
+    return pool
+
+
 RATE_UPDATE_S = 60.0
 """Coincidence rates are re-estimated once per this many seconds of data (s)."""
 
@@ -58,7 +93,13 @@ class Engine:
         cfg: EngineConfig,
         *,
         candidate_far_per_year: float | None = None,
+        threads: int = 1,
     ) -> None:
+        """``threads``: how many threads evaluate a stretch of seeds at once (split by
+        seed; the candidates do not depend on it)."""
+        if threads < 1:
+            raise ValueError(f"threads {threads!r} must be >= 1")
+        self.threads = threads
         self.registry = registry
         self.cfg = cfg
         self.far_threshold = (
@@ -249,21 +290,15 @@ class Engine:
                     p_max = self.far_threshold / (trial[trial > 0].min() * SECONDS_PER_YEAR)
                     rates = (b, trial)
                     if stat == "sites":
-                        res = self.coinc.evaluate(
-                            self._t,
-                            self._s,
+                        (res,) = self._in_chunks(
+                            partial(self._eval_sites, tab=tab, k=k, p_max=p_max, clock=clock),
                             i0,
                             i1,
-                            tab,
-                            k,
-                            p_max=p_max,
-                            clock=clock,
-                            prev=self._prev,
                         )
                         out += self._coinc_decisions(stat, res, rates, w_s, ahead)
                     else:
-                        fronts = self.front.evaluate(
-                            self._t, self._s, i0, i1, tab.rates_per_ns, p_max=p_max, clock=clock
+                        fronts = self._in_chunks(
+                            partial(self._eval_front, tab=tab, p_max=p_max, clock=clock), i0, i1
                         )
                         for fr in fronts:
                             w_f = self.cfg.coincidence.front_scales_s[fr.scale_index]
@@ -274,6 +309,38 @@ class Engine:
                     b = max(b, int(self._t[i_next]) // self.bin_ns)
             self._prog[e] = limit
         return out
+
+    def _eval_sites(
+        self, a: int, b: int, *, tab: Tables, k: int, p_max: float, clock: LiveClock
+    ) -> list[SeedResult]:
+        return [
+            self.coinc.evaluate(
+                self._t, self._s, a, b, tab, k, p_max=p_max, clock=clock, prev=self._prev
+            )
+        ]
+
+    def _eval_front(
+        self, a: int, b: int, *, tab: Tables, p_max: float, clock: LiveClock
+    ) -> list[SeedResult]:
+        return self.front.evaluate(
+            self._t, self._s, a, b, tab.rates_per_ns, p_max=p_max, clock=clock
+        )
+
+    def _in_chunks(
+        self, evaluate: Callable[[int, int], list[SeedResult]], i0: int, i1: int
+    ) -> list[SeedResult]:
+        """``evaluate(i0, i1)``, split by seed over :attr:`threads` threads when the
+        stretch is long. Seeds are judged independently, so the merged results are
+        those of one call, bit for bit."""
+        n = min(self.threads, (i1 - i0) // PARALLEL_MIN_SEEDS)
+        if n <= 1:
+            return evaluate(i0, i1)
+        edges = [i0 + (i1 - i0) * j // n for j in range(n + 1)]
+        parts = list(_pool(self.threads).map(evaluate, edges[:-1], edges[1:]))
+        return [
+            concat_results(parts[0][f].scale_index, [p[f] for p in parts])
+            for f in range(len(parts[0]))
+        ]
 
     def _coinc_decisions(
         self, stat: str, res: SeedResult, rates: tuple[int, F64Array], w_s: float, ahead: int

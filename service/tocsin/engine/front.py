@@ -48,7 +48,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from tocsin.engine.coincidence import SeedResult, SlotGeometry
+from tocsin.engine.coincidence import SeedResult, SlotGeometry, concat_results
 from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
 from tocsin.engine.geometry import ellipsoid_up, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
@@ -73,32 +73,6 @@ the Earth."""
 
 _BUCKETS = ((3, 4), (5, 7), (8, K_MAX))
 """Seeds are evaluated in groups by their number of neighbour hits (inclusive ranges)."""
-
-
-def _concat_results(scale_index: int, parts: list[SeedResult]) -> SeedResult:
-    """One scale's results of several seed groups, ordered by seed as one call gives."""
-    empty = np.zeros(0, dtype=np.int64)
-    parts = [r for r in parts if r.seed_idx.size]
-    if not parts:
-        return SeedResult(scale_index, empty, np.zeros(0), empty, empty, empty)
-    if len(parts) == 1:
-        return parts[0]
-    seeds = np.concatenate([r.seed_idx for r in parts])
-    offs = np.cumsum([0] + [r.seed_idx.size for r in parts[:-1]])
-    nb_seed = np.concatenate([r.nb_seed + o for r, o in zip(parts, offs, strict=True)])
-    nb_idx = np.concatenate([r.nb_idx for r in parts])
-    order = np.argsort(seeds, kind="stable")
-    rank = np.empty_like(order)
-    rank[order] = np.arange(order.size)
-    nb_order = np.argsort(rank[nb_seed], kind="stable")
-    return SeedResult(
-        scale_index,
-        seeds[order],
-        np.concatenate([r.p for r in parts])[order],
-        np.concatenate([r.multiplicity for r in parts])[order],
-        rank[nb_seed][nb_order],
-        nb_idx[nb_order],
-    )
 
 
 def _predict_rows(
@@ -239,7 +213,7 @@ class FrontSearch:
             self._evaluate_wide(t, site, seed_pos[wides == w], int(w), use, p_max, clock)
             for w in groups
         ]
-        return [_concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+        return [concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
 
     def _evaluate_wide(
         self,
@@ -307,7 +281,7 @@ class FrontSearch:
                         wide,
                     )
                 )
-        return [_concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+        return [concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
 
     def _evaluate_seeds(
         self,

@@ -86,16 +86,20 @@ class LiveClock:
         iv = self.iv
         order = np.lexsort((iv.start, iv.site))
         s, a, b = iv.site[order], iv.start[order], iv.end[order]
-        self._ref = int(a.min()) if a.size else 0
-        self._span = (int(b.max()) - self._ref + 2) if a.size else 1
-        if self.iv.n_sites * self._span >= _KEY_LIMIT:
+        ref = int(a.min()) if a.size else 0
+        span = (int(b.max()) - ref + 2) if a.size else 1
+        if self.iv.n_sites * span >= _KEY_LIMIT:
             raise ValueError(
-                f"live intervals span {self._span} ns over {self.iv.n_sites} sites: "
+                f"live intervals span {span} ns over {self.iv.n_sites} sites: "
                 "too long for one look-up table"
             )
-        self._key = s * self._span + (a - self._ref)
-        self._len = b - a
-        self._cum = np.cumsum(self._len) - self._len
+        length = b - a
+        self._ref, self._span = ref, span
+        self._len = length
+        self._cum = np.cumsum(length) - length
+        # published last: a thread that sees the key sees the rest (engine threads
+        # may build the same table at once; both build identical values)
+        self._key = s * span + (a - ref)
 
     def _before(self, site: I64Array, t: I64Array) -> I64Array:
         """Running live total (ns) of all intervals up to ``(site, t)`` in key order."""

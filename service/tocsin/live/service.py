@@ -46,6 +46,7 @@ import orjson
 
 from tocsin.alerts.archive import Archive
 from tocsin.alerts.policy import AlertDesk
+from tocsin.engine.core import default_threads
 from tocsin.engine.sky import ecef_unit_to_radec
 from tocsin.errors import BatchRejected
 from tocsin.gpstime import gps_now_ns
@@ -138,6 +139,7 @@ class Service:
     def _restore(self) -> Pipeline:
         ck = checkpoint.load(self.ckpt_path, self.key)
         pipe = ck.pipeline if ck is not None else Pipeline(self.registry, self.cfg.engine)
+        pipe.engine.threads = self.cfg.engine_threads or default_threads()
         pipe.block_sink = self.followup.ring.add if self.followup is not None else None
         n = 0
         # Without a checkpoint, the last two background stretches rebuild every rate

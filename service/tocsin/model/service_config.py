@@ -113,6 +113,9 @@ class ServiceConfig(BaseModel):
     engine: EngineConfig = EngineConfig()
     alerts: AlertConfig = AlertConfig()
     followup: FollowupConfig = FollowupConfig()
+    engine_threads: Annotated[int, Field(ge=1, le=64)] | None = None
+    """Threads the engine evaluates with (None: the cores available, at most 4). The
+    candidates do not depend on it."""
 
 
 def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) -> ServiceConfig:
