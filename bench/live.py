@@ -608,7 +608,7 @@ def preload(cfg_path: Path, reg: SiteRegistry, rate_hz: float, end_ns: int,
 
 @dataclass(frozen=True, slots=True)
 class EngineAlone:
-    """The warm engine on 1 s blocks in this process (one core)."""
+    """The warm engine on 1 s blocks in this process (with the service's engine threads)."""
 
     hits_per_s: float
     """Over the blocks without a shower."""
@@ -623,6 +623,7 @@ class EngineAlone:
     """Coincidence decisions that block made (merged into candidates, then fitted)."""
     shower_candidates: int
     n_front: int
+    threads: int
 
 
 def engine_alone(engine: Engine, reg: SiteRegistry, start_ns: int, seconds: int,
@@ -653,7 +654,8 @@ def engine_alone(engine: Engine, reg: SiteRegistry, start_ns: int, seconds: int,
             break
     hz = sum(b.n_hits for b in blocks[: len(took)]) / sum(took)
     if sum(took) > ENGINE_BUDGET_S:
-        return EngineAlone(hz, float(np.median(took)), math.nan, math.nan, 0, 0, n_front)
+        return EngineAlone(hz, float(np.median(took)), math.nan, math.nan, 0, 0, n_front,
+                           engine.threads)
     t0 = time.perf_counter()
     engine.process(blocks[-2])
     first_s = time.perf_counter() - t0
@@ -663,7 +665,7 @@ def engine_alone(engine: Engine, reg: SiteRegistry, start_ns: int, seconds: int,
     shower_s = time.perf_counter() - t0
     after = sum(v for k, v in engine.counters.decisions.items() if k.startswith("coinc"))
     return EngineAlone(hz, float(np.median(took)), first_s, shower_s, after - before,
-                       len(cands), n_front)
+                       len(cands), n_front, engine.threads)
 
 
 def front_cost_s(reg: SiteRegistry, coinc: CoincidenceConfig, rate_hz: float, n_seeds: int,
@@ -1017,8 +1019,9 @@ def stage_detail(s: Stage) -> str:
         f"window {s.candidates}; each shower's first candidate after "
         f"{', '.join(f'{x:.2f}' for x in s.per_shower)} s",
         "  CPU per wall second: " + ", ".join(f"{k} {v:.2f}" for k, v in s.cpu.items())
-        + (f"\n  engine alone (this process, one core, 1 s blocks as the service releases "
-           f"them): {s.engine.hits_per_s:,.0f} hits/s = {s.engine.hits_per_s / s.offered:.2f}x "
+        + (f"\n  engine alone (this process, {s.engine.threads} engine thread(s) as in the "
+           f"service, 1 s blocks as the service releases them): "
+           f"{s.engine.hits_per_s:,.0f} hits/s = {s.engine.hits_per_s / s.offered:.2f}x "
            f"this load, {s.engine.block_s:.2f} s per block; a block with one "
            f"{s.engine.n_front}-site shower {s.engine.shower_block_s:.2f} s "
            f"({s.engine.shower_decisions} coincidence decisions "
