@@ -46,6 +46,8 @@ PARALLEL_MIN_SEEDS = 20_000
 """A stretch of seeds is split over threads only into parts at least this long (a
 thread's start and the neighbour search around each part cost something)."""
 _POOLS: dict[int, ThreadPoolExecutor] = {}
+if hasattr(os, "register_at_fork"):  # a forked child has none of the parent's threads
+    os.register_at_fork(after_in_child=_POOLS.clear)
 
 
 def default_threads() -> int:
