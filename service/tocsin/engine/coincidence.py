@@ -218,14 +218,16 @@ NO_PREVIOUS_NS = -(2**62)
 """Stands for "no previous hit": far below any GPS time, and differences stay in int64."""
 
 
-def previous_same_site(t: I64Array, site: I32Array) -> I64Array:
-    """For each hit, the time (GPS ns) of the previous hit of the same site, or
-    :data:`NO_PREVIOUS_NS`."""
+def previous_same_site(t: I64Array, site: I32Array, before: I64Array | None = None) -> I64Array:
+    """For each hit, the time (GPS ns) of the previous hit of the same site; for a
+    site's first hit here, ``before[site]`` (each site's latest hit before these, when
+    the caller keeps it) or :data:`NO_PREVIOUS_NS`."""
     order = np.lexsort((t, site))
     ts, ss = t[order], site[order]
-    prev_sorted = np.full(t.size, NO_PREVIOUS_NS, dtype=np.int64)
-    same = ss[1:] == ss[:-1]
-    prev_sorted[1:][same] = ts[:-1][same]
+    first = np.r_[True, ss[1:] != ss[:-1]] if ss.size else np.zeros(0, dtype=bool)
+    prev_sorted = np.empty(t.size, dtype=np.int64)
+    prev_sorted[1:] = ts[:-1]
+    prev_sorted[first] = NO_PREVIOUS_NS if before is None else before[ss[first]]
     out = np.empty(t.size, dtype=np.int64)
     out[order] = prev_sorted
     return out

@@ -24,6 +24,7 @@ from tocsin.engine.coincidence import (
     SeedResult,
     Tables,
     concat_results,
+    previous_same_site,
 )
 from tocsin.engine.direction import fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
@@ -173,7 +174,9 @@ class Engine:
         if block.t.size:
             self._t = np.concatenate([self._t, block.t])
             self._s = np.concatenate([self._s, block.site])
-            self._prev = np.concatenate([self._prev, self._previous_hits(block)])
+            prev = previous_same_site(block.t, block.site, before=self._last_t)
+            np.maximum.at(self._last_t, block.site, block.t)
+            self._prev = np.concatenate([self._prev, prev])
         decisions = self._coincidences(block.t_end)
         decisions += self._excesses(block.t_end)
         self._trim()
@@ -189,21 +192,6 @@ class Engine:
             ):
                 sites = np.array([self.registry.index(x) for x in cand.sites], dtype=np.int64)
                 self._add_direction(cand, sites, np.array(cand.hit_times_ns, dtype=np.int64))
-        return out
-
-    def _previous_hits(self, block: Block) -> I64Array:
-        """For each hit of ``block``, the time of the previous hit of its site (in the
-        block, else the site's latest before it); updates :attr:`_last_t`."""
-        order = np.lexsort((block.t, block.site))
-        ts, ss = block.t[order], block.site[order]
-        first = np.r_[True, ss[1:] != ss[:-1]]
-        prev_sorted = np.empty(ts.size, dtype=np.int64)
-        prev_sorted[1:] = ts[:-1]
-        prev_sorted[first] = self._last_t[ss[first]]
-        last = np.r_[ss[1:] != ss[:-1], True]
-        self._last_t[ss[last]] = ts[last]
-        out = np.empty(ts.size, dtype=np.int64)
-        out[order] = prev_sorted
         return out
 
     # ------------------------------------------------------------------
