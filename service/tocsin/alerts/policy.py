@@ -175,8 +175,10 @@ class AlertDesk:
         level = self.level_of(cand.far_per_year, cand.trigger)
         if level is None:
             return None
-        family = self._family_of(cand)
-        members = self.archive.alerts_for(family)
+        members = self.archive.alerts_for(cand.id)
+        family = cand.id if members else self._family_by_hits(cand)
+        if family != cand.id:
+            members = self.archive.alerts_for(family)
         if any(a.kind == "retraction" for a in members):
             return None  # withdrawn by an operator: the cluster stays quiet
         kind: AlertKind = "new"
@@ -204,6 +206,7 @@ class AlertDesk:
         t_ns, _, _ = event_time(cand)
         held = not self._take(level, int(t_ns))
         created = self.now()
+        now_iso = _iso(created)
         skymap_uri, skymap_path = self._skymap(cand, ivorn)
         meta = AlertMeta(ivorn, kind, level, created, cites, note, skymap_uri)
         xml = build_alert(cand, meta, self.cfg)
@@ -218,30 +221,29 @@ class AlertDesk:
             status="held" if held else "queued",
             cites=cites,
             note=note,
-            created_utc=_iso(created),
+            created_utc=now_iso,
             event_gps_ns=int(t_ns),
             far_per_year=float(cand.far_per_year),
             skymap=skymap_path,
             xml=xml,
         )
         sinks = [] if held else self.sinks_for(level)
-        if not self.archive.insert_alert(row, sinks, _iso(created)):
+        if not self.archive.insert_alert(row, sinks, now_iso):
             return None
         if members and not held and level == "public":
             # subscribers of the public level get the alert this update cites first
             # (archive order: it goes out before the update)
             for m in members:
                 if m.status == "queued" and m.kind != "followup":
-                    self.archive.add_deliveries(m.ivorn, self.sinks_for("public"), _iso(created))
+                    self.archive.add_deliveries(m.ivorn, sinks, now_iso)
         self._remember(family, int(cand.time_gps_ns), _hit_keys(cand.sites, cand.hit_times_ns))
         if held:
             self.n_held += 1
         return self.archive.get(ivorn)
 
     # -- families --------------------------------------------------------------
-    def _family_of(self, cand: Candidate) -> str:
-        if self.archive.alerts_for(cand.id):
-            return cand.id
+    def _family_by_hits(self, cand: Candidate) -> str:
+        """The family of an alerted coincidence sharing a hit with ``cand``, else its own id."""
         for key in _hit_keys(cand.sites, cand.hit_times_ns):
             fam = self._by_hit.get(key)
             if fam is not None:
@@ -300,6 +302,7 @@ class AlertDesk:
             raise AlertError(f"candidate {orig.candidate_id!r} of {ivorn!r} is already retracted")
         first = family[0]
         created = self.now()
+        now_iso = _iso(created)
         new_ivorn = f"{self.cfg.stream_ivorn}#{local_id(orig.candidate_id, 'retraction')}"
         sent_levels = {a.level for a in family if a.status == "queued"}
         level: Level = "public" if "public" in sent_levels else "internal"
@@ -316,7 +319,7 @@ class AlertDesk:
             status="queued",
             cites=first.ivorn,
             note=reason,
-            created_utc=_iso(created),
+            created_utc=now_iso,
             event_gps_ns=orig.event_gps_ns,
             far_per_year=orig.far_per_year,
             skymap=None,
