@@ -50,13 +50,13 @@ import numpy as np
 from scipy import stats as sps
 
 from tocsin.engine.block import Block
-from tocsin.engine.coincidence import CoincidenceTrigger, Tables
+from tocsin.engine.coincidence import CoincidenceTrigger, SeedResult, Tables
 from tocsin.engine.front import FrontSearch
-from tocsin.engine.stats import sidak
+from tocsin.engine.stats import randomised_p, sidak
 from tocsin.engine.upper_limit import kbn_upper_limit
 from tocsin.model.config import CoincidenceConfig
 from tocsin.model.registry import SiteRegistry
-from tocsin.types import C_M_PER_NS, NS_PER_S, BoolArray, F64Array, GpsNs, I64Array
+from tocsin.types import C_M_PER_NS, NS_PER_S, BoolArray, F64Array, GpsNs, I32Array, I64Array
 
 SEED_CHUNK = 200_000
 """Seeds evaluated per call of the ``sites`` statistic (bounds the memory of the pair search)."""
@@ -99,6 +99,21 @@ class Evaluations:
     multiplicity: I64Array
 
     @staticmethod
+    def of_seeds(
+        res: SeedResult, t: I64Array, site: I32Array, kind: int, scale_s: float
+    ) -> Evaluations:
+        """The seeds of one coincidence or front result (stream ``t``, ``site``)."""
+        m = res.seed_idx.size
+        return Evaluations(
+            t[res.seed_idx],
+            res.p,
+            np.full(m, kind, np.int64),
+            np.full(m, scale_s),
+            site[res.seed_idx].astype(np.int64),
+            res.multiplicity,
+        )
+
+    @staticmethod
     def concat(parts: list[Evaluations]) -> Evaluations:
         if not parts:
             z = np.zeros(0, np.int64)
@@ -120,7 +135,6 @@ class Best:
     site: str | None
     multiplicity: int
     observed: int | None = None
-    expected: float | None = None
 
 
 @dataclass(slots=True)
@@ -148,7 +162,6 @@ class TargetedResult:
     expected: dict[str, float]
     upper_limit_90: dict[str, float]
     """KBN 90 % upper limit on extra hits in the window, per site and ``"network"``."""
-    sites_used: list[str]
     visible_sites: list[str] | None = None
     statistics: list[str] = field(default_factory=list)
 
@@ -257,15 +270,7 @@ class TargetedSearch:
             for i0 in range(0, t.size, SEED_CHUNK):
                 i1 = min(t.size, i0 + SEED_CHUNK)
                 res = trig.evaluate(t, s32, i0, i1, tab, k, p_max=1.0)
-                m = res.seed_idx.size
-                ev = Evaluations(
-                    t[res.seed_idx],
-                    res.p,
-                    np.full(m, kind, np.int64),
-                    np.full(m, w),
-                    s32[res.seed_idx].astype(np.int64),
-                    res.multiplicity,
-                )
+                ev = Evaluations.of_seeds(res, t, s32, kind, w)
                 parts.append(ev if kind == KIND_DIRECTED else self._keep(ev, hist))
         return Evaluations.concat(parts)
 
@@ -318,18 +323,10 @@ class TargetedSearch:
         for i0 in range(0, t.size, FRONT_CHUNK):
             i1 = min(t.size, i0 + FRONT_CHUNK)
             for res in fs.evaluate(t, s32, i0, i1, rates, p_max=1.0):
-                m = res.seed_idx.size
-                if m == 0:
+                if res.seed_idx.size == 0:
                     continue
                 w = self.coinc_cfg.front_scales_s[res.scale_index]
-                ev = Evaluations(
-                    t[res.seed_idx],
-                    res.p,
-                    np.full(m, KIND_FRONT, np.int64),
-                    np.full(m, w),
-                    s32[res.seed_idx].astype(np.int64),
-                    res.multiplicity,
-                )
+                ev = Evaluations.of_seeds(res, t, s32, KIND_FRONT, w)
                 parts.append(self._keep(ev, hist))
         return Evaluations.concat(parts)
 
@@ -473,7 +470,6 @@ class TargetedSearch:
             observed=obs,
             expected=exp,
             upper_limit_90=ul,
-            sites_used=[s for s, k in zip(self.registry.ids, self.ok, strict=True) if k],
             visible_sites=vis_ids,
             statistics=stats_used,
         )
@@ -518,8 +514,7 @@ class TargetedSearch:
 def _rand_poisson_p(n: I64Array, mu: F64Array, u: F64Array) -> F64Array:
     """``P(N > n) + u P(N = n)`` for ``N ~ Poisson(mu)``: uniform under the null."""
     mu_s = np.maximum(mu, 0.0)
-    p = sps.poisson.sf(n, mu_s) + u * sps.poisson.pmf(n, mu_s)
-    return np.asarray(np.clip(p, 0.0, 1.0), dtype=np.float64)
+    return randomised_p(sps.poisson.sf(n, mu_s), sps.poisson.pmf(n, mu_s), u)
 
 
 def _ev(t: I64Array, p: F64Array, kind: int, w_ns: int, site: int, n: I64Array) -> Evaluations:
