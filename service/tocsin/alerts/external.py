@@ -18,22 +18,10 @@ from typing import Any, Final
 from astropy import units as u
 from astropy.time import Time
 
-from tocsin.alerts.safexml import REJECT_REASONS, CheckedVOEvent, XmlLimits, check_voevent
+from tocsin.alerts.safexml import CheckedVOEvent, XmlLimits, check_voevent
 from tocsin.errors import TocsinError
 from tocsin.gpstime import utc_to_gps_ns
 from tocsin.types import GpsNs
-
-EXTERNAL_REASONS: Final = (
-    *REJECT_REASONS,
-    "timeout",
-    "no_time",
-    "bad_time",
-    "role_not_allowed",
-    "author_not_allowed",
-    "duplicate",
-    "citation_only",
-)
-"""Every reason an outside packet is not followed up (metrics label)."""
 
 _MESSENGER_WORDS: Final = (
     ("gw", ("gravitational", "/gw", "gw#", "strain")),
