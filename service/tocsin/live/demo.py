@@ -30,6 +30,7 @@ from typing import TextIO
 import numpy as np
 import orjson
 
+from tocsin.alerts.outbox import packet_name
 from tocsin.engine.sky import ecef_unit_to_radec, local_up_ecef, radec_to_ecef_unit
 from tocsin.gpstime import gps_now_ns, gps_ns_to_utc_iso
 from tocsin.io.recording import open_text
@@ -249,7 +250,7 @@ def _status_line(service: Service, reg: SiteRegistry, elapsed: float) -> str:
 
 
 def _describe_alert(ivorn: str, kind: str, level: str, status: str, service: Service) -> str:
-    path = service.packet_dir / (ivorn.split("#", 1)[1] + ".xml")
+    path = service.packet_dir / packet_name(ivorn)
     return (
         f"  ALERT ({service.cfg.alerts.role}) {kind}/{level} {status}: {ivorn}\n"
         f"        VOEvent packet: {path}"
@@ -325,7 +326,6 @@ async def run_recording_demo(
                         say(_status_line(service, reg, time.monotonic() - t_wall0))
             say("  recording sent; waiting for the service to close the last windows")
             # the service's idle tick closes the windows that reach the end of the data
-            n_alerts = -1
             for _ in range(40):
                 await asyncio.sleep(0.5)
                 wm = service.pipeline.orderer.watermark
