@@ -59,14 +59,13 @@ from dataclasses import dataclass
 import numpy as np
 import orjson
 
-from tocsin.cli.replay import REPLAY_BLOCK_S
 from tocsin.engine.block import Block
 from tocsin.engine.coincidence import CoincidenceTrigger
 from tocsin.engine.core import RATE_UPDATE_S, Engine, default_threads
 from tocsin.io.recording import decode_line
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import Site, SiteRegistry
-from tocsin.pipeline import Pipeline
+from tocsin.pipeline import REPLAY_BLOCK_S, Pipeline
 from tocsin.types import C_M_PER_NS, NS_PER_S, I32Array, I64Array
 
 T0_S = 1_450_000_080

@@ -23,6 +23,10 @@ from tocsin.model.registry import SiteRegistry
 from tocsin.ordering import Orderer
 from tocsin.types import NS_PER_S, GpsNs
 
+REPLAY_BLOCK_S = 16.0
+"""Blocks handed to the engine (s) when a recording is replayed (replay, tuning): long
+for speed; the candidates do not depend on it."""
+
 
 @dataclass(slots=True)
 class IntakeCounters:

@@ -21,12 +21,10 @@ from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import load_engine_config
 from tocsin.model.registry import SiteRegistry
-from tocsin.pipeline import Pipeline
+from tocsin.pipeline import REPLAY_BLOCK_S, Pipeline
 from tocsin.types import NS_PER_S
 
 MAX_REJECT_LINES_SHOWN = 20
-REPLAY_BLOCK_S = 16.0
-"""Replay hands the engine 16 s blocks (fewer calls); results equal 1 s blocks (tested)."""
 
 
 def add_parser(sub: Any) -> None:

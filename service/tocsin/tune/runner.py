@@ -24,7 +24,7 @@ from typing import Any, Protocol
 from tocsin.engine.core import RATE_UPDATE_S
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
-from tocsin.pipeline import Pipeline
+from tocsin.pipeline import REPLAY_BLOCK_S, Pipeline
 from tocsin.tune.injections import (
     CandRow,
     InjectionSetPlan,
@@ -37,8 +37,6 @@ from tocsin.tune.recorded import RecordedNetwork
 from tocsin.tune.slides import SlidePlan, slid_hits
 from tocsin.types import NS_PER_S, I64Array
 
-BLOCK_S = 16.0
-"""Blocks handed to the engine (s), as in replay; results do not depend on it."""
 STOP_CHECK_BATCHES = 2048
 """A worker looks at the stop flag once per this many batches."""
 
@@ -99,7 +97,7 @@ def replay_hits(
         job.net.registry,
         job.cfg,
         candidate_far_per_year=job.candidate_far,
-        release_every_s=BLOCK_S,
+        release_every_s=REPLAY_BLOCK_S,
     )
     latest: dict[str, Candidate] = {}
     for k, b in enumerate(job.net.batches(hits)):
