@@ -21,7 +21,7 @@ from tocsin.tune.far import TRIGGERS, FarCurve
 from tocsin.tune.injections import Outcome
 from tocsin.tune.recommend import KIND_OF_TRIGGER, Recommendation
 from tocsin.tune.recorded import RecordedNetwork
-from tocsin.types import NS_PER_S, F64Array, I64Array
+from tocsin.types import NS_PER_S, F64Array
 
 DPI = 100
 
@@ -155,16 +155,6 @@ def efficiency_figure(
     return _png(fig)
 
 
-def live_before(start: I64Array, end: I64Array, t: I64Array) -> I64Array:
-    """Live time (ns) of intervals ``[start, end)`` before each time ``t`` (GPS ns)."""
-    cum = np.concatenate([[0], np.cumsum(end - start)]).astype(np.int64)
-    k = np.searchsorted(start, t, side="right") - 1
-    kk = np.clip(k, 0, None)
-    inside = np.minimum(t, end[kk]) - start[kk] if start.size else np.zeros_like(t)
-    out: I64Array = np.where(k >= 0, cum[kk] + inside, 0).astype(np.int64)
-    return out
-
-
 def rates_figure(net: RecordedNetwork, bin_s: float = 60.0) -> bytes:
     """Each site's hit rate over time in ``bin_s`` bins (live time only), dead time shaded."""
     n = len(net.sites)
@@ -179,9 +169,7 @@ def rates_figure(net: RecordedNetwork, bin_s: float = 60.0) -> bytes:
     for i, s in enumerate(net.sites):
         ax = axes[i // ncol][i % ncol]
         counts = np.diff(np.searchsorted(s.t, edges))
-        live = (
-            np.diff(live_before(s.start, s.end, edges)) / NS_PER_S if s.start.size else np.zeros(nb)
-        )
+        live = np.diff(s.live_before(edges)) / NS_PER_S
         with np.errstate(divide="ignore", invalid="ignore"):
             rate = np.where(live > 0.1 * bin_s, counts / live, np.nan)
         ax.plot(x_min, rate, "-", lw=0.8, color="C0")

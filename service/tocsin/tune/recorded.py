@@ -46,6 +46,17 @@ class SiteLive:
     def live_ns(self) -> int:
         return int(np.sum(self.end - self.start))
 
+    def live_before(self, t: I64Array) -> I64Array:
+        """Live time (ns) of the site before each time ``t`` (GPS ns), exact in integers."""
+        if self.start.size == 0:
+            return np.zeros(t.shape, dtype=np.int64)
+        cum = np.concatenate([[0], np.cumsum(self.end - self.start)]).astype(np.int64)
+        k = np.searchsorted(self.start, t, side="right") - 1
+        j = np.maximum(k, 0)
+        inside = np.minimum(t - self.start[j], self.end[j] - self.start[j])
+        out: I64Array = np.where(k >= 0, cum[j] + inside, 0).astype(np.int64)
+        return out
+
     def merged(self) -> tuple[I64Array, I64Array]:
         """Live intervals with touching neighbours joined (GPS ns): the site's outages are
         exactly the gaps between them."""
@@ -116,15 +127,7 @@ class RecordedNetwork:
         edges[0] = from_ns
         best = np.zeros(edges.size - 1, dtype=np.int64)
         for s in self.sites:
-            if s.start.size == 0:
-                continue
-            # live time of the site before each edge, exact in integers
-            cum = np.concatenate([[0], np.cumsum(s.end - s.start)]).astype(np.int64)
-            k = np.searchsorted(s.start, edges, side="right") - 1
-            j = np.maximum(k, 0)
-            inside = np.minimum(edges - s.start[j], s.end[j] - s.start[j])
-            before = np.where(k >= 0, cum[j] + inside, 0)
-            best = np.maximum(best, np.diff(before))
+            best = np.maximum(best, np.diff(s.live_before(edges)))
         return int(best.sum())
 
     def mean_rates_hz(self) -> list[float]:
