@@ -82,3 +82,25 @@ def small_network(seed: int = 3) -> tuple[SiteRegistry, dict[str, float]]:
             rng.uniform(10, 30) / 3600,
         )
     return SiteRegistry(sites), rates
+
+
+FOLLOWUP_SITES = (
+    ("fen-a", 46.0, 6.0, 50.0),
+    ("fen-b", 47.5, 8.5, 60.0),
+    ("fen-c", 44.2, 9.8, 40.0),
+    ("fen-d", 45.1, 3.9, 70.0),
+    ("fen-e", 48.3, 5.1, 50.0),
+    ("moor-f", 43.0, 7.0, 2e6),
+)
+"""(id, lat deg, lon deg, clock sigma ns): five GPS-timed stations in one region and an
+NTP-timed counter, the fictional network of the follow-up tests."""
+
+
+def followup_network() -> SiteRegistry:
+    """The follow-up tests' six sites (:data:`FOLLOWUP_SITES`), 300 m high."""
+    return SiteRegistry(
+        [
+            Site(id=i, lat_deg=la, lon_deg=lo, height_m=300.0, clock_sigma_ns=sg)
+            for i, la, lo, sg in FOLLOWUP_SITES
+        ]
+    )

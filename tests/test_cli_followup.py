@@ -8,10 +8,10 @@ from pathlib import Path
 import pytest
 
 from tests.extpackets import BILLION_LAUGHS, external_packet
+from tests.netsim import followup_network
 from tocsin.alerts.packet import read_alert
 from tocsin.alerts.safexml import check_voevent
 from tocsin.cli.main import main
-from tocsin.model.registry import Site, SiteRegistry
 from tocsin.types import NS_PER_S
 
 pytestmark = pytest.mark.slow
@@ -20,19 +20,7 @@ pytestmark = pytest.mark.slow
 @pytest.fixture(scope="module")
 def recording(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path, dict[str, object]]:
     d = tmp_path_factory.mktemp("fu-rec")
-    reg = SiteRegistry(
-        [
-            Site(id=i, lat_deg=la, lon_deg=lo, height_m=300.0, clock_sigma_ns=sg)
-            for i, la, lo, sg in (
-                ("fen-a", 46.0, 6.0, 50.0),
-                ("fen-b", 47.5, 8.5, 60.0),
-                ("fen-c", 44.2, 9.8, 40.0),
-                ("fen-d", 45.1, 3.9, 70.0),
-                ("fen-e", 48.3, 5.1, 50.0),
-                ("moor-f", 43.0, 7.0, 2e6),
-            )
-        ]
-    )
+    reg = followup_network()
     sites = d / "sites.toml"
     sites.write_text(reg.to_toml())
     rec = d / "rec.jsonl.gz"

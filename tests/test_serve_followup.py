@@ -25,34 +25,18 @@ from tests.extpackets import (
 )
 from tests.livenet import publish_sync, running_service
 from tests.mosquitto import Mosquitto
+from tests.netsim import followup_network
 from tocsin.alerts.packet import read_alert
 from tocsin.engine.geometry import ellipsoid_up
 from tocsin.engine.sky import ecef_unit_to_radec
 from tocsin.gpstime import gps_now_ns
-from tocsin.model.registry import Site, SiteRegistry
+from tocsin.model.registry import SiteRegistry
 from tocsin.types import C_M_PER_NS, NS_PER_S
 
 pytestmark = [pytest.mark.broker, pytest.mark.slow]
 
-SITES = [
-    ("fen-a", 46.0, 6.0, 50.0),
-    ("fen-b", 47.5, 8.5, 60.0),
-    ("fen-c", 44.2, 9.8, 40.0),
-    ("fen-d", 45.1, 3.9, 70.0),
-    ("fen-e", 48.3, 5.1, 50.0),
-    ("moor-f", 43.0, 7.0, 2e6),
-]
 RATE_HZ = 3.0
 EXTERNAL = "tocsin/external"
-
-
-def _registry() -> SiteRegistry:
-    return SiteRegistry(
-        [
-            Site(id=i, lat_deg=la, lon_deg=lo, height_m=300.0, clock_sigma_ns=sg)
-            for i, la, lo, sg in SITES
-        ]
-    )
 
 
 def _batches(reg: SiteRegistry, start: int, seconds: int, front: dict[int, int]) -> list[bytes]:
@@ -109,7 +93,7 @@ def _lines(path: Path) -> list[dict[str, object]]:
 def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
     mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
 ) -> None:
-    reg = _registry()
+    reg = followup_network()
     reg_path = tmp_path / "sites.toml"
     reg_path.write_text(reg.to_toml())
     now = gps_now_ns()
