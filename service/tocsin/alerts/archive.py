@@ -198,6 +198,15 @@ class Archive:
         cur = self.db.execute("SELECT * FROM alerts ORDER BY seq DESC LIMIT ?", (limit,))
         return [AlertRow(*r) for r in cur.fetchall()]
 
+    def followup_index(self, limit: int = 100_000) -> list[tuple[str, str, str | None, str]]:
+        """(kind, candidate id, cites, IVORN) of the latest ``limit`` alerts, newest first:
+        what the follow-up desk needs at start, without the packets."""
+        cur = self.db.execute(
+            "SELECT kind, candidate_id, cites, ivorn FROM alerts ORDER BY seq DESC LIMIT ?",
+            (limit,),
+        )
+        return [(str(k), str(c), None if x is None else str(x), str(i)) for k, c, x, i in cur]
+
     def recent_families(self, since_gps_ns: int) -> list[tuple[str, bytes]]:
         """(family id, latest JSON of the source candidate) of alerts from ``since_gps_ns``."""
         cur = self.db.execute(

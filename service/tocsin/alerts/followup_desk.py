@@ -90,11 +90,11 @@ class FollowupDesk:
         self.answered_before: dict[str, str] = {}
         """Outside IVORN -> our first answer, from the archive (answers of earlier runs)."""
         if self.archive is not None:
-            rows = self.archive.latest(limit=100_000)
-            withdrawn = {r.candidate_id for r in rows if r.kind == "retraction"}
-            for row in rows:
-                if row.kind == "followup" and row.cites and row.candidate_id not in withdrawn:
-                    self.answered_before.setdefault(row.cites, row.ivorn)
+            rows = self.archive.followup_index(limit=100_000)
+            withdrawn = {cand for kind, cand, _, _ in rows if kind == "retraction"}
+            for kind, cand, cites, ivorn in rows:
+                if kind == "followup" and cites and cand not in withdrawn:
+                    self.answered_before.setdefault(cites, ivorn)
 
     # -- intake ----------------------------------------------------------------
     def offer(self, ev: ExternalEvent) -> str:
