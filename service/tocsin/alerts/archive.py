@@ -14,6 +14,7 @@ is refused, so test and observation alerts are never mixed.
 
 from __future__ import annotations
 
+import datetime as dt
 import sqlite3
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -46,6 +47,11 @@ CREATE TABLE IF NOT EXISTS deliveries (
 CREATE INDEX IF NOT EXISTS deliveries_open ON deliveries (state);
 """
 
+
+
+def utc_stamp(t: dt.datetime) -> str:
+    """The archive's time stamps: UTC, ISO 8601 with microseconds."""
+    return t.astimezone(dt.UTC).isoformat(timespec="microseconds")
 
 @dataclass(frozen=True, slots=True)
 class AlertRow:

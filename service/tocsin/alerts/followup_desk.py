@@ -28,7 +28,7 @@ from typing import Any
 import numpy as np
 import orjson
 
-from tocsin.alerts.archive import AlertRow, Archive
+from tocsin.alerts.archive import AlertRow, Archive, utc_stamp
 from tocsin.alerts.external import ExternalEvent, ExternalRejected
 from tocsin.alerts.followup_packet import FollowupMeta, Outcome, build_followup
 from tocsin.alerts.policy import AlertDesk
@@ -279,7 +279,7 @@ class FollowupDesk:
         row: AlertRow | None = None
         if self.desk is not None and self.archive is not None:
             level = self.cfg.level
-            iso = created.astimezone(dt.UTC).isoformat(timespec="microseconds")
+            iso = utc_stamp(created)
             new = AlertRow(
                 seq=0,
                 ivorn=ours,

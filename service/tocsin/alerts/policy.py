@@ -26,7 +26,7 @@ from pathlib import Path
 
 import orjson
 
-from tocsin.alerts.archive import AlertRow, Archive
+from tocsin.alerts.archive import AlertRow, Archive, utc_stamp
 from tocsin.alerts.packet import (
     AlertKind,
     AlertMeta,
@@ -94,10 +94,6 @@ def _hit_keys(sites: object, hit_times_ns: object) -> list[tuple[str, int]]:
 
 def _utc_now() -> dt.datetime:
     return dt.datetime.now(dt.UTC)
-
-
-def _iso(t: dt.datetime) -> str:
-    return t.astimezone(dt.UTC).isoformat(timespec="microseconds")
 
 
 class AlertDesk:
@@ -206,7 +202,7 @@ class AlertDesk:
         t_ns, _, _ = event_time(cand)
         held = not self._take(level, int(t_ns))
         created = self.now()
-        now_iso = _iso(created)
+        now_iso = utc_stamp(created)
         skymap_uri, skymap_path = self._skymap(cand, ivorn)
         meta = AlertMeta(ivorn, kind, level, created, cites, note, skymap_uri)
         xml = build_alert(cand, meta, self.cfg)
@@ -302,7 +298,7 @@ class AlertDesk:
             raise AlertError(f"candidate {orig.candidate_id!r} of {ivorn!r} is already retracted")
         first = family[0]
         created = self.now()
-        now_iso = _iso(created)
+        now_iso = utc_stamp(created)
         new_ivorn = f"{self.cfg.stream_ivorn}#{local_id(orig.candidate_id, 'retraction')}"
         sent_levels = {a.level for a in family if a.status == "queued"}
         level: Level = "public" if "public" in sent_levels else "internal"
@@ -325,7 +321,7 @@ class AlertDesk:
             skymap=None,
             xml=xml,
         )
-        self.archive.insert_alert(row, self.sinks_for(level), _iso(created))
+        self.archive.insert_alert(row, self.sinks_for(level), now_iso)
         got = self.archive.get(new_ivorn)
         assert got is not None
         return got

@@ -29,7 +29,7 @@ from typing import Protocol
 
 import aiomqtt
 
-from tocsin.alerts.archive import Archive
+from tocsin.alerts.archive import Archive, utc_stamp
 from tocsin.alerts.outbox import flush_directory
 from tocsin.alerts.policy import SINK_MQTT, VTP_PREFIX
 from tocsin.live.logs import event
@@ -51,7 +51,7 @@ class SubscriberServer(Protocol):
 
 
 def _now() -> str:
-    return dt.datetime.now(dt.UTC).isoformat(timespec="microseconds")
+    return utc_stamp(dt.datetime.now(dt.UTC))
 
 
 class AlertDispatcher:
