@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import dataclasses
+import sqlite3
 from pathlib import Path
 
 import pytest
@@ -170,3 +172,23 @@ def test_update_rising_to_public_sends_the_cited_alert_first(tmp_path: Path) -> 
     assert {d.sink for d in desk.archive.deliveries(first.ivorn)} == {"dir", "mqtt", "vtp:obs-a"}
     order = [d.ivorn for d, _ in desk.archive.open_deliveries("vtp:")]
     assert order == [first.ivorn, upd.ivorn]  # the cited alert goes out first
+
+
+def test_update_and_its_cited_deliveries_are_one_transaction(tmp_path: Path) -> None:
+    """An update and the extra deliveries of the alert it cites are written together:
+    a failure while queueing the cited alert leaves the update unarchived too."""
+    desk = _desk(tmp_path)
+    first = desk.consider(front_candidate(far=50.0))
+    assert first is not None and first.level == "internal"
+    arch = desk.archive
+    upd = dataclasses.replace(first, ivorn=first.ivorn + "-u1", kind="update", level="public")
+    sinks = ["dir", "vtp:obs-a"]
+    # foreign keys are on: queueing an IVORN that is not archived fails inside the update's
+    # transaction, which must then leave nothing behind
+    with pytest.raises(sqlite3.IntegrityError):
+        arch.insert_alert(upd, sinks, "2026-01-01T00:00:00+00:00", also_queue=["ivo://x/y#none"])
+    assert arch.get(upd.ivorn) is None
+    assert arch.deliveries(upd.ivorn) == []
+    assert arch.insert_alert(upd, sinks, "2026-01-01T00:00:00+00:00", also_queue=[first.ivorn])
+    assert {d.sink for d in arch.deliveries(first.ivorn)} == {"dir", "mqtt", "vtp:obs-a"}
+    assert {d.sink for d in arch.deliveries(upd.ivorn)} == set(sinks)

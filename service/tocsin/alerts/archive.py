@@ -132,11 +132,24 @@ class Archive:
             ),
         )
 
-    def insert_alert(self, row: AlertRow, sinks: Iterable[str], now_utc: str) -> bool:
+    def insert_alert(
+        self,
+        row: AlertRow,
+        sinks: Iterable[str],
+        now_utc: str,
+        *,
+        also_queue: Iterable[str] = (),
+    ) -> bool:
         """Archive an alert and its pending deliveries in one transaction.
+
+        ``also_queue``: IVORNs of alerts already archived that go to ``sinks`` too
+        (an update's public subscribers get the alerts it cites first), queued in the
+        same transaction, so a crash leaves either all of it or none. Deliveries they
+        already have are left alone.
 
         Returns False (and changes nothing) if the IVORN is already archived.
         """
+        sinks = list(sinks)
         with self._tx():
             cur = self.db.execute(
                 "INSERT OR IGNORE INTO alerts (ivorn, candidate_id, revision, source_id, kind, "
@@ -166,15 +179,12 @@ class Archive:
                 "VALUES (?, ?, 'pending', ?)",
                 [(row.ivorn, s, now_utc) for s in sinks],
             )
+            self.db.executemany(
+                "INSERT OR IGNORE INTO deliveries (ivorn, sink, state, updated_utc) "
+                "VALUES (?, ?, 'pending', ?)",
+                [(iv, s, now_utc) for iv in also_queue for s in sinks],
+            )
         return True
-
-    def add_deliveries(self, ivorn: str, sinks: Iterable[str], now_utc: str) -> None:
-        """Queue an archived alert to more sinks (ones it already has are left alone)."""
-        self.db.executemany(
-            "INSERT OR IGNORE INTO deliveries (ivorn, sink, state, updated_utc) "
-            "VALUES (?, ?, 'pending', ?)",
-            [(ivorn, s, now_utc) for s in sinks],
-        )
 
     def mark(
         self, ivorn: str, sink: str, state: DeliveryState, now_utc: str, detail: str = ""

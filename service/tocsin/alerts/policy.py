@@ -224,14 +224,16 @@ class AlertDesk:
             xml=xml,
         )
         sinks = [] if held else self.sinks_for(level)
-        if not self.archive.insert_alert(row, sinks, now_iso):
+        # Subscribers of the public level get the alerts this update cites first
+        # (archive order: they go out before the update), queued in the update's
+        # own transaction.
+        cited = (
+            [m.ivorn for m in members if m.status == "queued" and m.kind != "followup"]
+            if members and not held and level == "public"
+            else []
+        )
+        if not self.archive.insert_alert(row, sinks, now_iso, also_queue=cited):
             return None
-        if members and not held and level == "public":
-            # subscribers of the public level get the alert this update cites first
-            # (archive order: it goes out before the update)
-            for m in members:
-                if m.status == "queued" and m.kind != "followup":
-                    self.archive.add_deliveries(m.ivorn, sinks, now_iso)
         self._remember(family, int(cand.time_gps_ns), _hit_keys(cand.sites, cand.hit_times_ns))
         if held:
             self.n_held += 1
