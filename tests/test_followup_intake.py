@@ -121,7 +121,7 @@ def _with_scale(raw: bytes, system: str) -> bytes:
     return raw.replace(b"UTC-ICRS-GEO", system.encode())
 
 
-@pytest.mark.parametrize("scale", ["UTC", "TT", "GPS"])
+@pytest.mark.parametrize("scale", ["UTC", "TT", "TDB", "GPS"])
 def test_event_time_in_every_scale(scale: str) -> None:
     iso = "2026-03-14T00:10:00.123456"
     raw = external_packet("Z1", T0)
@@ -135,6 +135,7 @@ def test_event_time_in_every_scale(scale: str) -> None:
     ref = {
         "UTC": Time(iso, scale="utc"),
         "TT": Time(iso, scale="tt"),
+        "TDB": Time(iso, scale="tdb"),
         "GPS": Time(iso, scale="tai") + 19 * u.s,
     }[scale]
     since_epoch_s = (ref.tai - Time(0.0, format="gps").tai).to_value(u.s)

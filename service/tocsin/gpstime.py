@@ -53,10 +53,7 @@ def utc_to_gps_ns(text: str) -> GpsNs:
         t = Time(s, format="isot", scale="utc", precision=9)
     except ValueError as exc:
         raise ValueError(f"not an ISO 8601 UTC time: {text!r}") from exc
-    g = t.tai - Time(0.0, format="gps").tai  # TimeDelta, two-double precision (days)
-    whole = round(float(g.jd1))
-    rest = (float(g.jd1) - whole) + float(g.jd2)  # exact subtraction; |rest| < ~1 day
-    return whole * 86400 * NS_PER_S + round(rest * 86400 * NS_PER_S)
+    return time_to_gps_ns(t)
 
 
 def time_to_gps_ns(t: Time) -> GpsNs:
@@ -64,9 +61,9 @@ def time_to_gps_ns(t: Time) -> GpsNs:
 
     Goes through TAI as a two-double difference (``Time.isot`` alone would keep only
     its default three decimals)."""
-    g = t.tai - Time(0.0, format="gps").tai
+    g = t.tai - Time(0.0, format="gps").tai  # TimeDelta, two-double precision (days)
     whole = round(float(g.jd1))
-    rest = (float(g.jd1) - whole) + float(g.jd2)
+    rest = (float(g.jd1) - whole) + float(g.jd2)  # exact subtraction; |rest| < ~1 day
     return whole * 86400 * NS_PER_S + round(rest * 86400 * NS_PER_S)
 
 

@@ -20,7 +20,7 @@ from astropy.time import Time
 
 from tocsin.alerts.safexml import CheckedVOEvent, XmlLimits, check_voevent
 from tocsin.errors import TocsinError
-from tocsin.gpstime import utc_to_gps_ns
+from tocsin.gpstime import time_to_gps_ns, utc_to_gps_ns
 from tocsin.types import GpsNs
 
 _MESSENGER_WORDS: Final = (
@@ -123,10 +123,10 @@ def _event_time(v: Any, ivorn: str) -> tuple[GpsNs | None, float | None]:
         elif scale in ("TT", "TDB"):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                t_ns = _gps_ns(Time(s, format="isot", scale=scale.lower()))
+                t_ns = time_to_gps_ns(Time(s, format="isot", scale=scale.lower()))
         elif scale == "GPS":
             # GPS = TAI - 19 s (VOEVENT.md §5, checked there with astropy)
-            t_ns = _gps_ns(Time(s, format="isot", scale="tai") + 19 * u.s)
+            t_ns = time_to_gps_ns(Time(s, format="isot", scale="tai") + 19 * u.s)
         else:
             raise ExternalRejected(
                 "bad_time", f"time scale of coord_system_id {system!r} unknown", ivorn=ivorn
@@ -141,13 +141,6 @@ def _event_time(v: Any, ivorn: str) -> tuple[GpsNs | None, float | None]:
         except ValueError:
             err = None
     return t_ns, err
-
-
-def _gps_ns(t: Time) -> GpsNs:
-    """GPS ns of any astropy time, to the nanosecond (``Time.isot`` alone keeps 3 decimals)."""
-    tu = t.utc
-    tu.precision = 9
-    return utc_to_gps_ns(tu.isot)
 
 
 def _position(v: Any) -> tuple[float | None, float | None, float | None]:
