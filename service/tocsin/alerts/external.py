@@ -16,6 +16,7 @@ from dataclasses import dataclass
 from typing import Any, Final
 
 from astropy import units as u
+from astropy.coordinates import EarthLocation, SkyCoord
 from astropy.time import Time
 
 from tocsin.alerts.safexml import CheckedVOEvent, XmlLimits, check_voevent
@@ -76,8 +77,8 @@ def read_external(chk: CheckedVOEvent) -> ExternalEvent:
         (str(e.text or "").strip(), str(e.get("cite", "")))
         for e in v.xpath("./Citations/EventIVORN")
     )
-    t_ns, t_err = _event_time(v, chk.ivorn)
     ra, dec, err = _position(v)
+    t_ns, t_err = _event_time(v, chk.ivorn, ra, dec)
     desc = " ".join(
         _text(v, p) or "" for p in ("./Description", "./How/Description", "./Why/Description")
     )
@@ -106,7 +107,14 @@ def _text(v: Any, path: str) -> str | None:
     return None if t is None else str(t).strip()
 
 
-def _event_time(v: Any, ivorn: str) -> tuple[GpsNs | None, float | None]:
+def _event_time(
+    v: Any, ivorn: str, ra_deg: float | None, dec_deg: float | None
+) -> tuple[GpsNs | None, float | None]:
+    """Event time at the Earth's centre (GPS ns) and its error (s), from the first
+    ``AstroCoords``. The scale is the first part of the coordinate system id; a
+    barycentric time (``TDB-*-BARY``) is moved to the geocentre along the packet's
+    own direction (up to ~500 s), and refused without one. A topocentric time is
+    taken as geocentric (at most ~21 ms off, far inside any follow-up window)."""
     coords = v.xpath("./WhereWhen/ObsDataLocation/ObservationLocation/AstroCoords")
     if not coords:
         return None, None
@@ -120,10 +128,24 @@ def _event_time(v: Any, ivorn: str) -> tuple[GpsNs | None, float | None]:
     try:
         if scale == "UTC":
             t_ns = utc_to_gps_ns(s)
-        elif scale in ("TT", "TDB"):
+        elif scale == "TT" or (scale == "TDB" and not system.upper().endswith("-BARY")):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
                 t_ns = time_to_gps_ns(Time(s, format="isot", scale=scale.lower()))
+        elif scale == "TDB":
+            if ra_deg is None or dec_deg is None:
+                raise ExternalRejected(
+                    "bad_time",
+                    f"barycentric time ({system!r}) without a sky position cannot be "
+                    "brought to the Earth",
+                    ivorn=ivorn,
+                )
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                t_geo = barycentric_to_geocentric(
+                    Time(s, format="isot", scale="tdb"), ra_deg, dec_deg
+                )
+            t_ns = time_to_gps_ns(t_geo)
         elif scale == "GPS":
             # GPS = TAI - 19 s (VOEVENT.md §5, checked there with astropy)
             t_ns = time_to_gps_ns(Time(s, format="isot", scale="tai") + 19 * u.s)
@@ -141,6 +163,24 @@ def _event_time(v: Any, ivorn: str) -> tuple[GpsNs | None, float | None]:
         except ValueError:
             err = None
     return t_ns, err
+
+
+GEOCENTRE = EarthLocation.from_geocentric(0.0, 0.0, 0.0, unit=u.m)
+
+
+def barycentric_to_geocentric(t_bary: Time, ra_deg: float, dec_deg: float) -> Time:
+    """Arrival time at the Earth's centre of a plane wave from ICRS (``ra_deg``,
+    ``dec_deg``) that reaches the solar-system barycentre at ``t_bary`` (TDB).
+
+    Inverts astropy's ``Time.light_travel_time(kind="barycentric")`` (geocentre to
+    barycentre, |ltt| <= ~500 s) by fixed-point iteration: the delay changes by
+    ~1e-4 s per s, so three steps leave well under a nanosecond."""
+    src = SkyCoord(ra_deg * u.deg, dec_deg * u.deg, frame="icrs")
+    t = Time(t_bary, location=GEOCENTRE)
+    for _ in range(3):
+        t = t_bary - t.light_travel_time(src, kind="barycentric")
+        t = Time(t, location=GEOCENTRE)
+    return t
 
 
 def _position(v: Any) -> tuple[float | None, float | None, float | None]:
