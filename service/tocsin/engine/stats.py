@@ -90,14 +90,17 @@ def poisson_binomial_pmf_rows(q: ArrayLike) -> F64Array:
             f"{float(np.max(qq))!r}]"
         )
     r, n = qq.shape
-    pmf = np.zeros((r, n + 1), dtype=np.float64)
-    pmf[:, 0] = 1.0
+    # Work on (state, row) and (column, row) layouts: each step then reads and writes
+    # contiguous rows (~3x faster than column slices for large R; same arithmetic).
+    qt = np.ascontiguousarray(qq.T)
+    pmf = np.zeros((n + 1, r), dtype=np.float64)
+    pmf[0] = 1.0
     for j in range(n):
-        qj = qq[:, j : j + 1]
-        new = pmf[:, : j + 2] * (1.0 - qj)
-        new[:, 1:] += pmf[:, : j + 1] * qj
-        pmf[:, : j + 2] = new
-    return pmf
+        qj = qt[j]
+        pj = 1.0 - qj
+        pmf[1 : j + 2] = pmf[1 : j + 2] * pj + pmf[: j + 1] * qj
+        pmf[0] *= pj
+    return np.ascontiguousarray(pmf.T)
 
 
 def poisson_binomial_pmf_top(q: ArrayLike, k_top: int) -> F64Array:
@@ -119,16 +122,16 @@ def poisson_binomial_pmf_top(q: ArrayLike, k_top: int) -> F64Array:
         out = np.zeros((r, k_top + 1))
         out[:, : n + 1] = full
         return _f64(out)
-    pmf = np.zeros((r, k_top + 1), dtype=np.float64)
-    pmf[:, 0] = 1.0
+    qt = np.ascontiguousarray(qq.T)  # layouts as in poisson_binomial_pmf_rows
+    pmf = np.zeros((k_top + 1, r), dtype=np.float64)
+    pmf[0] = 1.0
     for j in range(n):
-        qj = qq[:, j : j + 1]
-        top = pmf[:, k_top] + pmf[:, k_top - 1] * qq[:, j]
-        new = pmf[:, :k_top] * (1.0 - qj)
-        new[:, 1:] += pmf[:, : k_top - 1] * qj
-        pmf[:, :k_top] = new
-        pmf[:, k_top] = top
-    return pmf
+        qj = qt[j]
+        pj = 1.0 - qj
+        pmf[k_top] += pmf[k_top - 1] * qj
+        pmf[1:k_top] = pmf[1:k_top] * pj + pmf[: k_top - 1] * qj
+        pmf[0] *= pj
+    return np.ascontiguousarray(pmf.T)
 
 
 def poisson_binomial_pmf(q: ArrayLike) -> F64Array:
