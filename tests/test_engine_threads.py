@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from tocsin.engine import core
+from tocsin.engine import core, front
 from tocsin.engine.coincidence import SeedResult
 from tocsin.io.recording import read_recording
 from tocsin.model.config import EngineConfig
@@ -67,3 +67,21 @@ def test_threads_must_be_positive() -> None:
     registry = SiteRegistry.from_toml(DATA / "network.toml")
     with pytest.raises(ValueError, match="threads 0"):
         core.Engine(registry, EngineConfig(), threads=0)
+
+
+def test_front_passes_give_byte_identical_candidates(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The front search holds a bounded number of seeds and triple rows at once (memory
+    on dense networks); slicing the seeds must not change a single candidate."""
+    one = _lines(1)
+    evaluated: list[int] = []
+    real = front.FrontSearch._evaluate_seeds
+
+    def counting(self: front.FrontSearch, cand: object, *args: object) -> list[SeedResult]:
+        evaluated.append(len(cand))  # type: ignore[arg-type]
+        return real(self, cand, *args)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(front, "SEEDS_PER_PASS", 500)
+    monkeypatch.setattr(front, "ROWS_PER_PASS", 64)
+    monkeypatch.setattr(front.FrontSearch, "_evaluate_seeds", counting)
+    assert _lines(1) == one
+    assert len(evaluated) > 100 and max(evaluated) <= 64  # the slicing really happened

@@ -43,6 +43,7 @@ Calibration is checked against simulated background (``tests/test_calibration.py
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 
 import numpy as np
@@ -73,6 +74,24 @@ the Earth."""
 
 _BUCKETS = ((3, 4), (5, 7), (8, K_MAX))
 """Seeds are evaluated in groups by their number of neighbour hits (inclusive ranges)."""
+SEEDS_PER_PASS = 1 << 16
+"""Most seeds searched in one pass: bounds the (seed, neighbour) pair arrays."""
+ROWS_PER_PASS = 1 << 18
+"""Most (triple, mirror solution) rows held at once (each row has ``K_MAX`` float
+columns in a dozen arrays: ~0.3 GB at this size). A dense network puts up to
+``2 C(K_MAX, 2) = 132`` rows on every seed, so seeds go in slices of bounded rows;
+seeds are independent, so the results do not depend on the slicing."""
+
+
+def _row_slices(n_nb: I64Array) -> list[slice]:
+    """Consecutive slices of seeds (with ``n_nb`` neighbour hits each) holding at most
+    about :data:`ROWS_PER_PASS` rows (two per pair of neighbour hits)."""
+    rows = np.cumsum(n_nb * (n_nb - 1))
+    if rows.size == 0:
+        return []
+    cuts = np.searchsorted(rows, np.arange(1, int(rows[-1]) // ROWS_PER_PASS + 1) * ROWS_PER_PASS)
+    edges = np.unique(np.r_[0, cuts, rows.size]).tolist()
+    return [slice(a, b) for a, b in itertools.pairwise(edges)]
 
 
 def _predict_rows(
@@ -203,6 +222,27 @@ class FrontSearch:
         seed_pos = seed_pos[use[site[seed_pos]] & (self.widest[site[seed_pos]] >= 0)]
         if seed_pos.size == 0 or use.sum() < 4 or n_f == 0:
             return none
+        if seed_pos.size > SEEDS_PER_PASS:  # memory: passes over slices of the seeds
+            passes = [
+                self._evaluate_positions(
+                    t, site, seed_pos[i : i + SEEDS_PER_PASS], use, p_max, clock
+                )
+                for i in range(0, seed_pos.size, SEEDS_PER_PASS)
+            ]
+            return [concat_results(f, [ps[f] for ps in passes]) for f in range(n_f)]
+        return self._evaluate_positions(t, site, seed_pos, use, p_max, clock)
+
+    def _evaluate_positions(
+        self,
+        t: I64Array,
+        site: I32Array,
+        seed_pos: I64Array,
+        use: BoolArray,
+        p_max: float,
+        clock: LiveClock | None,
+    ) -> list[SeedResult]:
+        """:meth:`evaluate` for the seeds at stream positions ``seed_pos`` (ascending)."""
+        n_f = self.scales_ns.size
         # Seeds grouped by their site's widest active scale: triples are solved at
         # that scale's slots, and only the scales up to it are evaluated.
         wides = self.widest[site[seed_pos]]
@@ -262,8 +302,10 @@ class FrontSearch:
         n_nb = np.bincount(g, minlength=seed_pos.size)[cand]
         parts: list[list[SeedResult]] = []
         for lo_n, hi_n in _BUCKETS:
-            sel_c = cand[(n_nb >= lo_n) & (n_nb <= hi_n)]
-            if sel_c.size:
+            in_b = (n_nb >= lo_n) & (n_nb <= hi_n)
+            sel_b = cand[in_b]
+            for sl in _row_slices(n_nb[in_b]):
+                sel_c = sel_b[sl]
                 parts.append(
                     self._evaluate_seeds(
                         sel_c,
