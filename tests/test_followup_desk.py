@@ -226,3 +226,68 @@ def test_hostile_packets_are_refused_with_bounded_memory(
     assert [r["reason"] for r in refused] == ["doctype", "doctype", "too_large"]
     status = json.loads((tmp_path / "followup_status.json").read_text())
     assert status["packets"] == {"accepted": 1, "doctype": 2, "too_large": 1}
+
+
+def _restart(tmp: Path, reg: SiteRegistry, old: _Setup) -> tuple[_Setup, int]:
+    """Close ``old`` as a crash would leave it, open a new desk on the same archive and
+    offer it the journal, as the service does at start-up."""
+    old.archive.close()
+    st = _Setup(tmp, reg)
+    return st, st.desk.restore(st.archive.externals(""), limits=LIMITS)
+
+
+def test_a_pending_event_survives_a_restart(tmp_path: Path, small_registry: SiteRegistry) -> None:
+    st = _Setup(tmp_path, small_registry)
+    ring = _ring(small_registry)
+    key = ivorn("J1")
+    assert st.desk.offer(_ev("J1", T0 + 600 * NS_PER_S)) == "pending"  # type: ignore[arg-type]
+    with pytest.raises(ExternalRejected):  # refused packets are not journaled
+        st.desk.offer(_ev("J2", T0, role="utility"))  # type: ignore[arg-type]
+    assert len(st.archive.externals("")) == 1
+    # the service stops before the window has its data: nothing answered yet
+    st, pending = _restart(tmp_path, small_registry, st)
+    assert pending == 1
+    assert st.desk.due(ring.t_start, ring.t_end) == [(key, True)]
+    lo, hi = st.desk.span_needed(key, ring.t_start or 0)
+    row = st.desk.answer(key, st.desk.search(key, ring.block(lo, hi)))
+    assert row is not None and row.cites == key
+    assert [x["external_ivorn"] for x in st.lines()] == [key]
+    # the same packet arriving again (a broker re-delivery) is a duplicate
+    with pytest.raises(ExternalRejected, match="duplicate"):
+        st.desk.offer(_ev("J1", T0 + 600 * NS_PER_S))  # type: ignore[arg-type]
+
+
+def test_a_restart_sends_nothing_twice(tmp_path: Path, small_registry: SiteRegistry) -> None:
+    """Answered, updated, re-answered and retracted before the restart: after it the
+    chain is tracked again with the same answers and nothing new is archived or written."""
+    st = _Setup(tmp_path, small_registry)
+    ring = _ring(small_registry)
+    key = ivorn("K1")
+
+    def answer() -> None:
+        lo, hi = st.desk.span_needed(key, ring.t_start or 0)
+        assert st.desk.answer(key, st.desk.search(key, ring.block(lo, hi))) is not None
+
+    st.desk.offer(_ev("K1", T0 + 600 * NS_PER_S))  # type: ignore[arg-type]
+    answer()
+    upd = _ev("K1-2", T0 + 650 * NS_PER_S, cite=(key, "supersedes"))
+    assert st.desk.offer(upd) == "superseded"  # type: ignore[arg-type]
+    answer()
+    before_rows = [(r.ivorn, r.kind) for r in st.archive.latest()]
+    before_lines = st.lines()
+    st, pending = _restart(tmp_path, small_registry, st)
+    assert pending == 0
+    tr = st.desk.tracked[key]
+    assert tr.state == "answered" and len(tr.answers) == 2
+    assert tr.event.ivorn == ivorn("K1-2")
+    # a retraction after the restart retracts our answer once
+    retr = _ev("K1-x", None, cite=(ivorn("K1-2"), "retraction"))
+    assert st.desk.offer(retr) == "retracted"  # type: ignore[arg-type]
+    rows = [(r.ivorn, r.kind) for r in st.archive.latest()]
+    assert len(rows) == len(before_rows) + 1 and rows[0][1] == "retraction"
+    # and a second restart replays all three packets without a new row or line
+    lines = st.lines()
+    st, pending = _restart(tmp_path, small_registry, st)
+    assert pending == 0 and st.desk.tracked[key].state == "retracted"
+    assert [(r.ivorn, r.kind) for r in st.archive.latest()] == rows
+    assert st.lines() == lines and lines[: len(before_lines)] == before_lines

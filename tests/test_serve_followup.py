@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import signal
 import sqlite3
 import time
 from pathlib import Path
@@ -150,3 +151,41 @@ def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
         con.close()
     assert ("retraction", ours) in rows
     assert svc.stop() == 0
+
+
+def test_outside_alert_waiting_for_its_window_survives_a_kill(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+) -> None:
+    """An outside alert arrives while its search window still lacks data; the service
+    is SIGKILLed, restarted, and the rest of the data arrives: the alert is answered
+    (from the journal of outside packets), once."""
+    reg = followup_network()
+    reg_path = tmp_path / "sites.toml"
+    reg_path.write_text(reg.to_toml())
+    now = gps_now_ns()
+    start = (now // NS_PER_S - 150) * NS_PER_S
+    t_ev = start + 60 * NS_PER_S + 250_000_000
+    n = ellipsoid_up(reg.ecef_m[0])
+    front = {j: t_ev - round(float(reg.ecef_m[j] @ n) / C_M_PER_NS) for j in range(5)}
+    ra, dec = ecef_unit_to_radec(n, t_ev)
+    data = tmp_path / "data"
+    cfg = _config(tmp_path, mosquitto, reg_path)
+    lines = _batches(reg, start, 145, front)
+    first = 65 * len(reg)  # data up to start + 65 s: the window ends at start + 70.25 s
+    svc = running_service(stack, cfg)
+    publish_sync(mosquitto.port, lines[:first])
+    packet = external_packet("fe-0314-2", t_ev, ra_dec_err=(ra, dec, 5.0))
+    publish_sync(mosquitto.port, [(EXTERNAL, packet)])
+    status = data / "followup_status.json"
+    _wait(lambda: json.loads(status.read_text())["packets"].get("accepted") == 1, 60, "taken")
+    fu = data / "followups.jsonl"
+    assert not fu.exists() or _lines(fu) == []  # still waiting for its window
+    assert svc.stop(signal.SIGKILL) == -signal.SIGKILL
+    svc2 = running_service(stack, cfg)
+    publish_sync(mosquitto.port, lines[first:])
+    _wait(lambda: len(_lines(fu)) >= 1, 120, "the answer after the restart")
+    time.sleep(3.0)  # room for a wrong second answer to show up
+    [ans] = _lines(fu)
+    assert ans["external_ivorn"] == ivorn("fe-0314-2")
+    assert ans["outcome"] == "detection", ans
+    assert svc2.stop() == 0

@@ -45,13 +45,16 @@ CREATE TABLE IF NOT EXISTS deliveries (
     state TEXT NOT NULL, attempts INTEGER NOT NULL DEFAULT 0, detail TEXT NOT NULL DEFAULT '',
     updated_utc TEXT NOT NULL, PRIMARY KEY (ivorn, sink));
 CREATE INDEX IF NOT EXISTS deliveries_open ON deliveries (state);
+CREATE TABLE IF NOT EXISTS external (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT, ivorn TEXT NOT NULL,
+    received_utc TEXT NOT NULL, raw BLOB NOT NULL);
 """
-
 
 
 def utc_stamp(t: dt.datetime) -> str:
     """The archive's time stamps: UTC, ISO 8601 with microseconds."""
     return t.astimezone(dt.UTC).isoformat(timespec="microseconds")
+
 
 @dataclass(frozen=True, slots=True)
 class AlertRow:
@@ -185,6 +188,27 @@ class Archive:
                 [(iv, s, now_utc) for iv in also_queue for s in sinks],
             )
         return True
+
+    def add_external(self, ivorn: str, raw: bytes, now_utc: str) -> None:
+        """Journal an outside packet the follow-up desk took (exact bytes), so that a
+        restart can rebuild the events it tracks (see ``FollowupDesk.restore``)."""
+        self.db.execute(
+            "INSERT INTO external (ivorn, received_utc, raw) VALUES (?, ?, ?)",
+            (ivorn, now_utc, raw),
+        )
+
+    def externals(self, since_utc: str) -> list[bytes]:
+        """Journaled outside packets received at or after ``since_utc``, in arrival order."""
+        cur = self.db.execute(
+            "SELECT raw FROM external WHERE received_utc >= ? ORDER BY seq", (since_utc,)
+        )
+        return [bytes(r[0]) for r in cur.fetchall()]
+
+    def prune_externals(self, before_utc: str) -> int:
+        """Forget journaled outside packets received before ``before_utc``; returns how many."""
+        return self.db.execute(
+            "DELETE FROM external WHERE received_utc < ?", (before_utc,)
+        ).rowcount
 
     def mark(
         self, ivorn: str, sink: str, state: DeliveryState, now_utc: str, detail: str = ""

@@ -14,6 +14,11 @@ Pure and synchronous (the live service and ``tocsin followup`` share it):
 * :meth:`FollowupDesk.answer` archives the follow-up packet (kind ``followup``, the
   same archive and deliveries as our own alerts) and writes one line to
   ``followups.jsonl``.
+* Every packet the desk takes is journaled in the archive (exact bytes) before
+  :meth:`FollowupDesk.offer` returns; after a restart :meth:`FollowupDesk.restore`
+  offers the journal again, in arrival order, so events still waiting for their
+  window are searched and answered as if the service had never stopped. Answers and
+  retractions already archived are adopted, never sent twice.
 """
 
 from __future__ import annotations
@@ -21,6 +26,7 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 from collections import Counter
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -29,9 +35,10 @@ import numpy as np
 import orjson
 
 from tocsin.alerts.archive import AlertRow, Archive, utc_stamp
-from tocsin.alerts.external import ExternalEvent, ExternalRejected
+from tocsin.alerts.external import ExternalEvent, ExternalRejected, read_external
 from tocsin.alerts.followup_packet import FollowupMeta, Outcome, build_followup
 from tocsin.alerts.policy import AlertDesk
+from tocsin.alerts.safexml import PacketRejected, XmlLimits, check_voevent
 from tocsin.engine.block import Block
 from tocsin.engine.geometry import ellipsoid_up
 from tocsin.engine.sky import radec_to_ecef_unit
@@ -87,6 +94,7 @@ class FollowupDesk:
         self.reach_ns = int(max(coinc.scales_s) * NS_PER_S) + 2 * GUARD_NS
         self.last_packet: bytes | None = None
         """The last answer's packet (for ``tocsin followup``, which keeps no archive)."""
+        self._restoring = False
         self.answered_before: dict[str, str] = {}
         """Outside IVORN -> our first answer, from the archive (answers of earlier runs)."""
         if self.archive is not None:
@@ -100,7 +108,55 @@ class FollowupDesk:
     def offer(self, ev: ExternalEvent) -> str:
         """Take a checked outside event. Returns what happened (``pending``, ``superseded``,
         ``cancelled``, ``retracted``, ``retraction_noted``); raises :class:`ExternalRejected`
-        (role, author, duplicate, citation only, no time) otherwise."""
+        (role, author, duplicate, citation only, no time) otherwise. A packet taken is
+        journaled in the archive (when there is one) before this returns."""
+        status = self._take(ev)
+        if self.archive is not None and not self._restoring:
+            self.archive.add_external(ev.ivorn, ev.raw, utc_stamp(self.now()))
+        return status
+
+    def restore(self, packets: Iterable[bytes], *, limits: XmlLimits) -> int:
+        """Rebuild the tracked events from journaled packets (:meth:`Archive.externals`,
+        in arrival order) after a restart. Each is checked again and offered as when it
+        arrived, but nothing is journaled, written to ``followups.jsonl`` or sent again:
+        an event whose answer (or retraction) is already archived takes it over. Returns
+        the number of events left pending (searched when their data is in)."""
+        counters = self.counters.copy()
+        self._restoring = True
+        try:
+            for raw in packets:
+                try:
+                    ev = read_external(check_voevent(raw, limits=limits))
+                    self._take(ev)
+                except (PacketRejected, ExternalRejected):
+                    continue  # refused now as then (e.g. a role no longer followed)
+                root = self.alias.get(ev.ivorn)
+                if root is not None:
+                    self._adopt_answers(root)
+        finally:
+            self._restoring = False
+        pending = sum(1 for tr in self.tracked.values() if tr.state == "pending")
+        self.counters = counters
+        self.counters["restored_pending"] += pending
+        return pending
+
+    def _adopt_answers(self, key: str) -> None:
+        """Take over answers to ``key`` archived before a restart (same IVORNs)."""
+        tr = self.tracked.get(key)
+        while tr is not None and tr.state == "pending" and self.archive is not None:
+            row = self.archive.get(self._answer_ivorn(tr))
+            if row is None or row.cites != tr.event.ivorn:
+                return
+            tr.answers.append(row.ivorn)
+            tr.state = "answered"
+
+    def _answer_ivorn(self, tr: _Tracked) -> str:
+        """IVORN of the next answer to ``tr``: ``#<family>``, then ``-r1``, ``-r2`` ..."""
+        ours = f"{self.alert_cfg.stream_ivorn}#{tr.family}"
+        return f"{ours}-r{len(tr.answers)}" if tr.answers else ours
+
+    def _take(self, ev: ExternalEvent) -> str:
+        """:meth:`offer` without the journal."""
         if ev.role not in self.cfg.roles:
             raise ExternalRejected(
                 "role_not_allowed",
@@ -115,7 +171,7 @@ class FollowupDesk:
             )
         if ev.dedup_key in self.keys or ev.ivorn in self.alias:
             raise ExternalRejected("duplicate", "packet already received", ivorn=ev.ivorn)
-        if ev.ivorn in self.answered_before:
+        if ev.ivorn in self.answered_before and not self._restoring:
             raise ExternalRejected(
                 "duplicate",
                 f"already answered by {self.answered_before[ev.ivorn]} (archive)",
@@ -173,6 +229,10 @@ class FollowupDesk:
         reason = f"the cited event {cited} was retracted by {ev.ivorn}"
         if tr.answers and self.desk is not None:
             tr.state = "retracted"
+            if self.archive is not None and any(
+                a.kind == "retraction" for a in self.archive.alerts_for(tr.family)
+            ):
+                return "retracted"  # ours is retracted already (a restore, or a repeat)
             row = self.desk.retract(tr.answers[0], reason)
             self._line(tr, "retracted", None, note=reason, ours=row.ivorn)
             self.counters["answers_retracted"] += 1
@@ -270,9 +330,7 @@ class FollowupDesk:
             outcome = "detection"
         else:
             outcome = "upper_limit"
-        ours = f"{self.alert_cfg.stream_ivorn}#{tr.family}"
-        if tr.answers:
-            ours += f"-r{len(tr.answers)}"
+        ours = self._answer_ivorn(tr)
         created = self.now()
         meta = FollowupMeta(ours, created, outcome, before / NS_PER_S, after / NS_PER_S, note)
         xml = build_followup(ev, result, meta, self.alert_cfg)
@@ -315,6 +373,8 @@ class FollowupDesk:
         ours: str | None,
         xml: bytes | None = None,
     ) -> None:
+        if self._restoring:
+            return  # written when it first happened
         ev = tr.event
         rec: dict[str, Any] = {
             "external_ivorn": ev.ivorn,

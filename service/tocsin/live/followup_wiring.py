@@ -8,14 +8,25 @@ ring buffer, the desk and the intake (None when the table is off), and
 from __future__ import annotations
 
 import asyncio
+import datetime as dt
+import logging
 from typing import TYPE_CHECKING
 
+from tocsin.alerts.archive import utc_stamp
 from tocsin.alerts.followup_desk import FollowupDesk
+from tocsin.alerts.safexml import XmlLimits
 from tocsin.io.hitring import HitRing
 from tocsin.live.followup_intake import FollowupIntake
+from tocsin.live.logs import event
 
 if TYPE_CHECKING:
     from tocsin.live.service import Service
+
+log = logging.getLogger("tocsin.followup")
+
+JOURNAL_DAYS = 30
+"""Outside packets stay in the archive's journal this long (days); those received
+within the ring buffer's span are offered again at a restart."""
 
 
 def followup_for(service: Service) -> FollowupIntake | None:
@@ -32,6 +43,14 @@ def followup_for(service: Service) -> FollowupIntake | None:
         desk=service.desk,
         jsonl=cfg.data_dir / "followups.jsonl",
     )
+    if desk.archive is not None:
+        # events taken before a restart: searched (or adopted) as if it never happened
+        now = dt.datetime.now(dt.UTC)
+        desk.archive.prune_externals(utc_stamp(now - dt.timedelta(days=JOURNAL_DAYS)))
+        since = utc_stamp(now - dt.timedelta(hours=cfg.followup.buffer_hours))
+        limits = XmlLimits(max_bytes=cfg.followup.max_packet_bytes)
+        pending = desk.restore(desk.archive.externals(since), limits=limits)
+        event(log, "followup_restored", pending=pending, tracked=len(desk.tracked))
     return FollowupIntake(cfg.followup, desk, ring, cfg.data_dir, service.metrics.registry)
 
 
