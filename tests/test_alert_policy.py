@@ -153,6 +153,13 @@ def test_other_seeds_of_one_cluster_join_its_alert_family(tmp_path: Path) -> Non
     upd = desk.consider(better)
     assert upd is not None and upd.kind == "update" and upd.ivorn == first.ivorn + "-u1"
     assert read_alert(upd.xml).params["candidate_id"] == better.id
+    # the alert that reports each candidate (the demo prints it under the candidate)
+    reported = desk.archive.latest_for_source(better.id)
+    assert reported is not None and reported.ivorn == upd.ivorn
+    assert better.id != upd.candidate_id  # it joined another candidate's family
+    first_rep = desk.archive.latest_for_source(first.source_id)
+    assert first_rep is not None and first_rep.ivorn == first.ivorn
+    assert desk.archive.latest_for_source("no-such-candidate") is None
     assert read_alert(upd.xml).citations == [(first.ivorn, "supersedes")]
     desk.archive.close()
     again = _desk(tmp_path)  # the families survive a restart (rebuilt from the archive)

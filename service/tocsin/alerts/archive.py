@@ -40,6 +40,7 @@ CREATE TABLE IF NOT EXISTS alerts (
     cites TEXT, note TEXT NOT NULL DEFAULT '', created_utc TEXT NOT NULL,
     event_gps_ns INTEGER, far_per_year REAL, skymap TEXT, xml BLOB NOT NULL);
 CREATE INDEX IF NOT EXISTS alerts_by_candidate ON alerts (candidate_id);
+CREATE INDEX IF NOT EXISTS alerts_by_source ON alerts (source_id);
 CREATE TABLE IF NOT EXISTS deliveries (
     ivorn TEXT NOT NULL REFERENCES alerts (ivorn), sink TEXT NOT NULL,
     state TEXT NOT NULL, attempts INTEGER NOT NULL DEFAULT 0, detail TEXT NOT NULL DEFAULT '',
@@ -229,6 +230,14 @@ class Archive:
             "SELECT * FROM alerts WHERE candidate_id = ? ORDER BY seq", (candidate_id,)
         )
         return [AlertRow(*r) for r in cur.fetchall()]
+
+    def latest_for_source(self, source_id: str) -> AlertRow | None:
+        """The newest alert reporting candidate ``source_id`` (its own family's, or an
+        update of the family it joined), None if it was not alerted."""
+        r = self.db.execute(
+            "SELECT * FROM alerts WHERE source_id = ? ORDER BY seq DESC LIMIT 1", (source_id,)
+        ).fetchone()
+        return AlertRow(*r) if r else None
 
     def get(self, ivorn: str) -> AlertRow | None:
         r = self.db.execute("SELECT * FROM alerts WHERE ivorn = ?", (ivorn,)).fetchone()

@@ -23,6 +23,7 @@ import json
 import socket
 import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TextIO
@@ -152,8 +153,7 @@ async def run_demo(
         def on_candidate(c: Candidate) -> None:
             found.append(c)
             say(_describe(c, front))
-            for a in service.archive.alerts_for(c.id)[-1:]:
-                say(_describe_alert(a.ivorn, a.kind, a.level, a.status, service))
+            _say_alert(say, c, service)
 
         service.listeners.append(on_candidate)
         stop_service = asyncio.Event()
@@ -249,10 +249,15 @@ def _status_line(service: Service, reg: SiteRegistry, elapsed: float) -> str:
     )
 
 
-def _describe_alert(ivorn: str, kind: str, level: str, status: str, service: Service) -> str:
-    path = service.packet_dir / packet_name(ivorn)
-    return (
-        f"  ALERT ({service.cfg.alerts.role}) {kind}/{level} {status}: {ivorn}\n"
+def _say_alert(say: Callable[[str], None], c: Candidate, service: Service) -> None:
+    """Print the alert that reports candidate ``c`` (a new alert, or an update of the
+    family it joined), if the policy sent one."""
+    a = service.archive.latest_for_source(c.id)
+    if a is None:
+        return
+    path = service.packet_dir / packet_name(a.ivorn)
+    say(
+        f"  ALERT ({service.cfg.alerts.role}) {a.kind}/{a.level} {a.status}: {a.ivorn}\n"
         f"        VOEvent packet: {path}"
     )
 
@@ -298,8 +303,7 @@ async def run_recording_demo(
                 f"  CANDIDATE {c.trigger}/{c.statistic} {gps_ns_to_utc_iso(c.time_gps_ns)} "
                 f"{c.multiplicity} sites, FAR {c.far_per_year:.3g}/yr"
             )
-            for a in service.archive.alerts_for(c.id)[-1:]:
-                say(_describe_alert(a.ivorn, a.kind, a.level, a.status, service))
+            _say_alert(say, c, service)
 
         service.listeners.append(on_candidate)
         stop = asyncio.Event()
