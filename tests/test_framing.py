@@ -10,15 +10,12 @@ import datetime as dt
 import struct
 
 import pytest
-from hypothesis import given
-from hypothesis import strategies as st
 from lxml import etree
 
 from tocsin.alerts import framing
 from tocsin.alerts.framing import (
     TRANSPORT_NS,
     XSI_NS,
-    FrameDecoder,
     TransportMessage,
     build_transport,
     encode_frame,
@@ -62,36 +59,6 @@ def test_frame_length_refuses_a_count_over_the_cap_and_names_it() -> None:
 def test_encode_frame_refuses_a_payload_over_the_cap() -> None:
     with pytest.raises(PacketRejected, match="11 bytes"):
         encode_frame(b"x" * 11, max_bytes=10)
-
-
-@given(
-    payloads=st.lists(st.binary(max_size=300), max_size=12),
-    cuts=st.lists(st.integers(min_value=1, max_value=64), min_size=1, max_size=20),
-)
-def test_decoder_recovers_frames_however_the_stream_is_cut(
-    payloads: list[bytes], cuts: list[int]
-) -> None:
-    stream = b"".join(encode_frame(p) for p in payloads)
-    decoder = FrameDecoder()
-    got: list[bytes] = []
-    pos, i = 0, 0
-    while pos < len(stream):
-        step = cuts[i % len(cuts)]
-        got += decoder.feed(stream[pos : pos + step])
-        pos += step
-        i += 1
-    assert got == payloads
-    assert decoder.pending == 0
-
-
-def test_decoder_refuses_an_oversized_frame_on_its_header_alone() -> None:
-    decoder = FrameDecoder(max_bytes=1000)
-    assert decoder.feed(encode_frame(b"ok")) == [b"ok"]
-    with pytest.raises(PacketRejected, match="2147483648"):
-        decoder.feed(b"\x80\x00\x00\x00" + b"x" * 10)
-    assert decoder.pending == 0  # nothing of it is kept
-    with pytest.raises(PacketRejected):
-        decoder.feed(encode_frame(b"later"))  # the stream cannot be resynchronised
 
 
 # ------------------------------------------------------------- Transport

@@ -86,53 +86,6 @@ def frame_length(header: bytes, *, max_bytes: int = DEFAULT_LIMITS.max_bytes) ->
     return int(length)
 
 
-class FrameDecoder:
-    """Cuts a byte stream into frames. Holds at most one unfinished frame.
-
-    ``feed`` raises :class:`PacketRejected` (``too_large``) as soon as a header
-    announces more than ``max_bytes``; the stream cannot be resynchronised after
-    that, so the decoder refuses further input.
-    """
-
-    def __init__(self, *, max_bytes: int = DEFAULT_LIMITS.max_bytes) -> None:
-        if not 1 <= max_bytes <= MAX_FRAME_LIMIT:
-            raise ValueError(f"max_bytes {max_bytes!r} must be in 1..{MAX_FRAME_LIMIT}")
-        self._max = max_bytes
-        self._buf = bytearray()
-        self._need: int | None = None  # payload length of the frame being read
-        self._broken = False
-
-    @property
-    def pending(self) -> int:
-        """Bytes received that do not yet make a whole frame."""
-        return len(self._buf)
-
-    def feed(self, data: bytes) -> list[bytes]:
-        """Add received bytes; return the payloads of the frames they complete."""
-        if self._broken:
-            raise PacketRejected("too_large", "stream already refused after an oversized frame")
-        self._buf += data
-        out: list[bytes] = []
-        while True:
-            if self._need is None:
-                if len(self._buf) < FRAME_HEADER.size:
-                    return out
-                try:
-                    self._need = frame_length(
-                        bytes(self._buf[: FRAME_HEADER.size]), max_bytes=self._max
-                    )
-                except PacketRejected:
-                    self._broken = True
-                    self._buf.clear()
-                    raise
-                del self._buf[: FRAME_HEADER.size]
-            if len(self._buf) < self._need:
-                return out
-            out.append(bytes(self._buf[: self._need]))
-            del self._buf[: self._need]
-            self._need = None
-
-
 # ----------------------------------------------------------- Transport messages
 
 
