@@ -168,7 +168,7 @@ class Orderer:
         keep: list[HitBatch] = []
         for b in self._pending:
             (take if b.live_start < w else keep).append(b)
-        ts, ss, ls, lst, len_ = [], [], [], [], []
+        ts, sizes, ls, lst, len_ = [], [], [], [], []
         for b in take:
             if b.live_end <= w:
                 t = b.t
@@ -179,7 +179,7 @@ class Orderer:
                     HitBatch(b.site, b.site_index, b.seq, w, b.live_end, b.t[cut:], None, b.recv_ns)
                 )
             ts.append(t)
-            ss.append(np.full(t.size, b.site_index, dtype=np.int32))
+            sizes.append(t.size)
             ls.append(b.site_index)
             lst.append(max(b.live_start, w0))
             len_.append(min(b.live_end, w))
@@ -187,7 +187,7 @@ class Orderer:
         self.watermark = w
         if ts:
             t_all = np.concatenate(ts)
-            s_all = np.concatenate(ss)
+            s_all = np.repeat(np.asarray(ls, dtype=np.int32), sizes)
             order = np.argsort(t_all, kind="stable")
             t_all, s_all = t_all[order], s_all[order]
         else:
