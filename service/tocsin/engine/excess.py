@@ -247,6 +247,11 @@ class ExcessTrigger:
             gsize = self._group[si]
             for g in range(k0 // gsize, (k_end - 1) // gsize + 1):
                 klo, khi = max(k0, g * gsize), min(k_end, (g + 1) * gsize)
+                if not store.live_ns(klo * w, khi * w).any():
+                    # No site live in any of these windows (after the end of the data,
+                    # or a network-wide outage): no test and no candidate can come of
+                    # them, so their running sums are not built.
+                    continue
                 # Fixed origin of the group's cumulative sums, on a grid: the
                 # same in every batching, so even float rounding agrees.
                 anchor = g * gsize * w - self.guard_bins - self.background_bins
