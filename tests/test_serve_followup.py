@@ -77,6 +77,23 @@ def _config(tmp: Path, broker: Mosquitto, reg_path: Path) -> Path:
     return cfg
 
 
+class _Scene:
+    """The follow-up network, 145 s of 1 s batches ending a few seconds ago, and a
+    5-site front from the zenith of fen-a 60.25 s into them (the outside event)."""
+
+    def __init__(self, tmp: Path) -> None:
+        self.reg = followup_network()
+        self.reg_path = tmp / "sites.toml"
+        self.reg_path.write_text(self.reg.to_toml())
+        start = (gps_now_ns() // NS_PER_S - 150) * NS_PER_S
+        self.t_ev = start + 60 * NS_PER_S + 250_000_000
+        n = ellipsoid_up(self.reg.ecef_m[0])
+        front = {j: self.t_ev - round(float(self.reg.ecef_m[j] @ n) / C_M_PER_NS) for j in range(5)}
+        self.ra, self.dec = ecef_unit_to_radec(n, self.t_ev)
+        self.data = tmp / "data"
+        self.lines = _batches(self.reg, start, 145, front)
+
+
 def _wait(pred: object, timeout_s: float, what: str) -> None:
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
@@ -94,18 +111,10 @@ def _lines(path: Path) -> list[dict[str, object]]:
 def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
     mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
 ) -> None:
-    reg = followup_network()
-    reg_path = tmp_path / "sites.toml"
-    reg_path.write_text(reg.to_toml())
-    now = gps_now_ns()
-    start = (now // NS_PER_S - 150) * NS_PER_S
-    t_ev = start + 60 * NS_PER_S + 250_000_000
-    n = ellipsoid_up(reg.ecef_m[0])  # a front from the zenith of fen-a
-    front = {j: t_ev - round(float(reg.ecef_m[j] @ n) / C_M_PER_NS) for j in range(5)}
-    ra, dec = ecef_unit_to_radec(n, t_ev)
-    data = tmp_path / "data"
-    svc = running_service(stack, _config(tmp_path, mosquitto, reg_path))
-    publish_sync(mosquitto.port, _batches(reg, start, 145, front))
+    sc = _Scene(tmp_path)
+    t_ev, ra, dec, data = sc.t_ev, sc.ra, sc.dec, sc.data
+    svc = running_service(stack, _config(tmp_path, mosquitto, sc.reg_path))
+    publish_sync(mosquitto.port, sc.lines)
     # hostile packets first, through the live intake path
     publish_sync(
         mosquitto.port,
@@ -159,19 +168,10 @@ def test_outside_alert_waiting_for_its_window_survives_a_kill(
     """An outside alert arrives while its search window still lacks data; the service
     is SIGKILLed, restarted, and the rest of the data arrives: the alert is answered
     (from the journal of outside packets), once."""
-    reg = followup_network()
-    reg_path = tmp_path / "sites.toml"
-    reg_path.write_text(reg.to_toml())
-    now = gps_now_ns()
-    start = (now // NS_PER_S - 150) * NS_PER_S
-    t_ev = start + 60 * NS_PER_S + 250_000_000
-    n = ellipsoid_up(reg.ecef_m[0])
-    front = {j: t_ev - round(float(reg.ecef_m[j] @ n) / C_M_PER_NS) for j in range(5)}
-    ra, dec = ecef_unit_to_radec(n, t_ev)
-    data = tmp_path / "data"
-    cfg = _config(tmp_path, mosquitto, reg_path)
-    lines = _batches(reg, start, 145, front)
-    first = 65 * len(reg)  # data up to start + 65 s: the window ends at start + 70.25 s
+    sc = _Scene(tmp_path)
+    t_ev, ra, dec, data, lines = sc.t_ev, sc.ra, sc.dec, sc.data, sc.lines
+    cfg = _config(tmp_path, mosquitto, sc.reg_path)
+    first = 65 * len(sc.reg)  # data up to start + 65 s: the window ends at start + 70.25 s
     svc = running_service(stack, cfg)
     publish_sync(mosquitto.port, lines[:first])
     packet = external_packet("fe-0314-2", t_ev, ra_dec_err=(ra, dec, 5.0))
