@@ -83,6 +83,11 @@ columns in a dozen arrays: ~0.3 GB at this size). A dense network puts up to
 seeds are independent, so the results do not depend on the slicing."""
 
 
+def _merge(parts: list[list[SeedResult]], n_f: int) -> list[SeedResult]:
+    """Per front scale, the results of disjoint groups of seeds as one call gives them."""
+    return [concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+
+
 def _row_slices(n_nb: I64Array) -> list[slice]:
     """Consecutive slices of seeds (with ``n_nb`` neighbour hits each) holding at most
     about :data:`ROWS_PER_PASS` rows (two per pair of neighbour hits)."""
@@ -229,7 +234,7 @@ class FrontSearch:
                 )
                 for i in range(0, seed_pos.size, SEEDS_PER_PASS)
             ]
-            return [concat_results(f, [ps[f] for ps in passes]) for f in range(n_f)]
+            return _merge(passes, n_f)
         return self._evaluate_positions(t, site, seed_pos, use, p_max, clock)
 
     def _evaluate_positions(
@@ -253,7 +258,7 @@ class FrontSearch:
             self._evaluate_wide(t, site, seed_pos[wides == w], int(w), use, p_max, clock)
             for w in groups
         ]
-        return [concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+        return _merge(parts, n_f)
 
     def _evaluate_wide(
         self,
@@ -323,7 +328,7 @@ class FrontSearch:
                         wide,
                     )
                 )
-        return [concat_results(f, [pt[f] for pt in parts]) for f in range(n_f)]
+        return _merge(parts, n_f)
 
     def _evaluate_seeds(
         self,
