@@ -162,12 +162,15 @@ def test_hostile_packets_refused_then_outside_alert_answered_and_retracted(
     assert svc.stop() == 0
 
 
-def test_outside_alert_waiting_for_its_window_survives_a_kill(
-    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGTERM])
+def test_outside_alert_waiting_for_its_window_survives_a_restart(
+    mosquitto: Mosquitto, tmp_path: Path, stack: contextlib.ExitStack, sig: int
 ) -> None:
     """An outside alert arrives while its search window still lacks data; the service
-    is SIGKILLed, restarted, and the rest of the data arrives: the alert is answered
-    (from the journal of outside packets), once."""
+    is killed (no checkpoint) or stopped (checkpoint written), restarted, and the rest
+    of the data arrives: the alert is answered from the journal of outside packets,
+    once, and with the data of before the restart (the ring buffer is refilled from
+    the hit journal up to where the checkpoint's pipeline resumes)."""
     sc = _Scene(tmp_path)
     t_ev, ra, dec, data, lines = sc.t_ev, sc.ra, sc.dec, sc.data, sc.lines
     cfg = _config(tmp_path, mosquitto, sc.reg_path)
@@ -180,7 +183,8 @@ def test_outside_alert_waiting_for_its_window_survives_a_kill(
     _wait(lambda: json.loads(status.read_text())["packets"].get("accepted") == 1, 60, "taken")
     fu = data / "followups.jsonl"
     assert not fu.exists() or _lines(fu) == []  # still waiting for its window
-    assert svc.stop(signal.SIGKILL) == -signal.SIGKILL
+    assert svc.stop(sig) == (-signal.SIGKILL if sig == signal.SIGKILL else 0)
+    assert (data / "checkpoint.pickle").exists() == (sig == signal.SIGTERM)
     svc2 = running_service(stack, cfg)
     publish_sync(mosquitto.port, lines[first:])
     _wait(lambda: len(_lines(fu)) >= 1, 120, "the answer after the restart")

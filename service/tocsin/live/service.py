@@ -55,7 +55,7 @@ from tocsin.io.journal import Journal, read_from
 from tocsin.io.recording import decode_line
 from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
-from tocsin.live.followup_wiring import followup_for, start_followup
+from tocsin.live.followup_wiring import followup_for, refill_ring, start_followup
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
 from tocsin.live.transport import AllowedNetwork, TransportServer
@@ -141,6 +141,19 @@ class Service:
         pipe = ck.pipeline if ck is not None else Pipeline(self.registry, self.cfg.engine)
         pipe.engine.threads = self.cfg.engine_threads or default_threads()
         pipe.block_sink = self.followup.ring.add if self.followup is not None else None
+        w_ck = pipe.orderer.watermark
+        if ck is not None and self.followup is not None and w_ck is not None:
+            # the ring is not checkpointed: the journal of before it, up to where the
+            # restored pipeline's blocks begin (as after a restart without one)
+            refill_ring(
+                self.followup,
+                self.journal.directory,
+                self.registry,
+                since_ns=self.clock() - round(REBUILD_S * NS_PER_S),
+                upto_ns=w_ck,
+                lateness_ns=self.lateness_ns,
+                quantum_ns=pipe.orderer.quantum_ns,
+            )
         n = 0
         # Without a checkpoint, the last two background stretches rebuild every rate
         # estimate; older journal (months of it) is not needed.
