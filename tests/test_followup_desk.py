@@ -291,3 +291,28 @@ def test_a_restart_sends_nothing_twice(tmp_path: Path, small_registry: SiteRegis
     assert pending == 0 and st.desk.tracked[key].state == "retracted"
     assert [(r.ivorn, r.kind) for r in st.archive.latest()] == rows
     assert st.lines() == lines and lines[: len(before_lines)] == before_lines
+
+
+def test_packet_is_journaled_before_the_desk_acts(
+    tmp_path: Path, small_registry: SiteRegistry, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A crash while the desk acts on a packet leaves it in the journal for the restart;
+    a journaled packet the desk cannot take at start-up is counted, not fatal."""
+    st = _Setup(tmp_path, small_registry)
+
+    def crash(self: FollowupDesk, ev: object) -> str:
+        raise RuntimeError("power cut")
+
+    monkeypatch.setattr(FollowupDesk, "_take", crash)
+    with pytest.raises(RuntimeError):
+        st.desk.offer(_ev("C1", T0 + 600 * NS_PER_S))  # type: ignore[arg-type]
+    assert len(st.archive.externals("")) == 1
+    # start-up while the desk still fails on it: counted, the service starts
+    st.archive.close()
+    st = _Setup(tmp_path, small_registry)
+    assert st.desk.restore(st.archive.externals(""), limits=LIMITS) == 0
+    assert st.desk.counters["restore_failed"] == 1
+    # and once the desk works again, the next start-up picks the event up
+    monkeypatch.undo()
+    st, pending = _restart(tmp_path, small_registry, st)
+    assert pending == 1 and st.desk.tracked[ivorn("C1")].state == "pending"

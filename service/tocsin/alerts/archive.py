@@ -190,13 +190,19 @@ class Archive:
             )
         return True
 
-    def add_external(self, ivorn: str, raw: bytes, now_utc: str) -> None:
-        """Journal an outside packet the follow-up desk took (exact bytes), so that a
-        restart can rebuild the events it tracks (see ``FollowupDesk.restore``)."""
-        self.db.execute(
+    def add_external(self, ivorn: str, raw: bytes, now_utc: str) -> int:
+        """Journal an outside packet for the follow-up desk (exact bytes), so that a
+        restart can rebuild the events it tracks (see ``FollowupDesk.restore``);
+        returns its journal number."""
+        cur = self.db.execute(
             "INSERT INTO external (ivorn, received_utc, raw) VALUES (?, ?, ?)",
             (ivorn, now_utc, raw),
         )
+        return int(cur.lastrowid or 0)
+
+    def drop_external(self, seq: int) -> None:
+        """Forget journaled packet ``seq`` (the desk refused it)."""
+        self.db.execute("DELETE FROM external WHERE seq = ?", (seq,))
 
     def externals(self, since_utc: str) -> list[bytes]:
         """Journaled outside packets received at or after ``since_utc``, in arrival order."""

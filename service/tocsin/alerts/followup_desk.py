@@ -14,8 +14,8 @@ Pure and synchronous (the live service and ``tocsin followup`` share it):
 * :meth:`FollowupDesk.answer` archives the follow-up packet (kind ``followup``, the
   same archive and deliveries as our own alerts) and writes one line to
   ``followups.jsonl``.
-* Every packet the desk takes is journaled in the archive (exact bytes) before
-  :meth:`FollowupDesk.offer` returns; after a restart :meth:`FollowupDesk.restore`
+* Every packet the desk takes is journaled in the archive (exact bytes) before it
+  is acted on; after a restart :meth:`FollowupDesk.restore`
   offers the journal again, in arrival order, so events still waiting for their
   window are searched and answered as if the service had never stopped. Answers and
   retractions already archived are adopted, never sent twice.
@@ -108,12 +108,17 @@ class FollowupDesk:
     def offer(self, ev: ExternalEvent) -> str:
         """Take a checked outside event. Returns what happened (``pending``, ``superseded``,
         ``cancelled``, ``retracted``, ``retraction_noted``); raises :class:`ExternalRejected`
-        (role, author, duplicate, citation only, no time) otherwise. A packet taken is
-        journaled in the archive (when there is one) before this returns."""
-        status = self._take(ev)
-        if self.archive is not None and not self._restoring:
-            self.archive.add_external(ev.ivorn, ev.raw, utc_stamp(self.now()))
-        return status
+        (role, author, duplicate, citation only, no time) otherwise. The packet is
+        journaled in the archive (when there is one) before it is acted on, so a crash
+        at any point leaves it to :meth:`restore`; a refused one is dropped again."""
+        if self.archive is None or self._restoring:
+            return self._take(ev)
+        seq = self.archive.add_external(ev.ivorn, ev.raw, utc_stamp(self.now()))
+        try:
+            return self._take(ev)
+        except ExternalRejected:
+            self.archive.drop_external(seq)
+            raise
 
     def restore(self, packets: Iterable[bytes], *, limits: XmlLimits) -> int:
         """Rebuild the tracked events from journaled packets (:meth:`Archive.externals`,
@@ -122,6 +127,7 @@ class FollowupDesk:
         an event whose answer (or retraction) is already archived takes it over. Returns
         the number of events left pending (searched when their data is in)."""
         counters = self.counters.copy()
+        failed = 0
         self._restoring = True
         try:
             for raw in packets:
@@ -130,6 +136,9 @@ class FollowupDesk:
                     self._take(ev)
                 except (PacketRejected, ExternalRejected):
                     continue  # refused now as then (e.g. a role no longer followed)
+                except Exception:  # one bad packet must not stop a start-up
+                    failed += 1
+                    continue
                 root = self.alias.get(ev.ivorn)
                 if root is not None:
                     self._adopt_answers(root)
@@ -138,6 +147,8 @@ class FollowupDesk:
         pending = sum(1 for tr in self.tracked.values() if tr.state == "pending")
         self.counters = counters
         self.counters["restored_pending"] += pending
+        if failed:
+            self.counters["restore_failed"] += failed
         return pending
 
     def _adopt_answers(self, key: str) -> None:
