@@ -128,11 +128,11 @@ def _event_time(
     try:
         if scale == "UTC":
             t_ns = utc_to_gps_ns(s)
-        elif scale == "TT" or (scale == "TDB" and not system.upper().endswith("-BARY")):
+        elif scale == "TT":
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                t_ns = time_to_gps_ns(Time(s, format="isot", scale=scale.lower()))
-        elif scale == "TDB":
+                t_ns = time_to_gps_ns(Time(s, format="isot", scale="tt"))
+        elif scale == "TDB":  # the schema lists TDB only as TDB-ICRS-BARY / TDB-FK5-BARY
             if ra_deg is None or dec_deg is None:
                 raise ExternalRejected(
                     "bad_time",

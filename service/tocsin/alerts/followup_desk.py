@@ -111,7 +111,7 @@ class FollowupDesk:
         (role, author, duplicate, citation only, no time) otherwise. The packet is
         journaled in the archive (when there is one) before it is acted on, so a crash
         at any point leaves it to :meth:`restore`; a refused one is dropped again."""
-        if self.archive is None or self._restoring:
+        if self.archive is None:
             return self._take(ev)
         seq = self.archive.add_external(ev.ivorn, ev.raw, utc_stamp(self.now()))
         try:
