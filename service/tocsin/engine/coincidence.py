@@ -63,6 +63,7 @@ import numpy as np
 from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
+from tocsin.engine.slot_counts import slot_counts
 from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_top
 from tocsin.model.config import CoincidenceConfig
 from tocsin.model.registry import SiteRegistry
@@ -327,11 +328,35 @@ class CoincidenceTrigger:
         i_hi = int(np.searchsorted(t, int(t_seed[-1]) + self.geom.ahead_ns[k], side="right"))
         sub = i_lo + np.flatnonzero(counts_as_nb[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
-        pr = window_pairs(t_sub, t_seed, back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k])
+        prev_sub = previous_same_site(t_sub, s_sub) if prev is None else prev[sub]
+        n_seed = seed_pos.size
+        ss = site[seed_pos]
+        # the number of other sites in each seed's slots (compiled, no pair arrays)
+        kk = slot_counts(
+            t_sub,
+            s_sub.astype(np.int64),
+            prev_sub,
+            t_seed,
+            ss.astype(np.int64),
+            self.geom.lo_flat_i,
+            st.hi_counted,
+            self.n_sites,
+            self.geom.back_ns,
+            self.geom.ahead_ns[k],
+        )
+        # p = P(K > k) + P(K = k) * (Fisher term in [0, 1]) >= P(K > k): only seeds
+        # whose bound can pass need their offsets (most cannot).
+        maybe = (st.tail_gt[ss, kk] <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
+        idx_m = np.flatnonzero(maybe)
+        if idx_m.size == 0:
+            return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
+        pr = window_pairs(
+            t_sub, t_seed[idx_m], back_ns=self.geom.back_ns, ahead_ns=self.geom.ahead_ns[k]
+        )
         s_nb = s_sub[pr.nb]
-        tp_seed = np.repeat(t_seed, pr.counts)
+        tp_seed = np.repeat(t_seed[idx_m], pr.counts)
         d = t_sub[pr.nb] - tp_seed  # int64 ns
-        pair = np.repeat(site[seed_pos].astype(np.int64) * self.n_sites, pr.counts)
+        pair = np.repeat(ss[idx_m].astype(np.int64) * self.n_sites, pr.counts)
         pair += s_nb  # flat (seed site, site) index
         lo = self.geom.lo_flat_i.take(pair)
         # In the slot of a counted site (hi_counted folds in q > 0) ...
@@ -339,28 +364,17 @@ class CoincidenceTrigger:
         keep &= d >= lo
         # ... and only the earliest hit of a site in the slot counts: a hit whose
         # site's previous hit is already inside the slot is not the earliest.
-        prev_sub = previous_same_site(t_sub, s_sub) if prev is None else prev[sub]
         keep &= prev_sub[pr.nb] - tp_seed < lo
         ix = np.flatnonzero(keep)
-        g_seed = pr.seed[ix]
-        n_seed = seed_pos.size
-        kk = np.bincount(g_seed, minlength=n_seed)
-        ss = site[seed_pos]
-        # p = P(K > k) + P(K = k) * (Fisher term in [0, 1]) >= P(K > k): only seeds
-        # whose bound can pass need their offsets (most cannot).
-        maybe = (st.tail_gt[ss, kk] <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
-        idx_m = np.flatnonzero(maybe)
-        if idx_m.size == 0:
-            return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
-        ix = ix[maybe[g_seed]]
-        g_seed = pr.seed[ix]
+        g_seed = idx_m[pr.seed[ix]]
         g_nb = pr.nb[ix]
         s_nb = s_nb[ix]
         lo_m = lo[ix]
         pair = pair[ix]
+        d = d[ix]
         lam = tables.rates_per_ns[s_nb]
         w = self.geom.width_flat[k].take(pair)
-        off = (d[ix] - lo_m).astype(np.float64)  # offset into the slot (ns)
+        off = (d - lo_m).astype(np.float64)  # offset into the slot (ns)
         if clock is not None:
             part = clock.partial_sites(
                 int(t_seed[0]) - self.geom.back_ns,

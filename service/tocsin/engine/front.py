@@ -51,7 +51,8 @@ from numpy.typing import NDArray
 
 from tocsin.engine.coincidence import SeedResult, SlotGeometry, concat_results
 from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
-from tocsin.engine.geometry import ellipsoid_up, pair_light_time_ns
+from tocsin.engine.front_bound import BOUND_MARGIN, front_lower_bounds
+from tocsin.engine.geometry import MIN_TRIANGLE_ANGLE_DEG, ellipsoid_up, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.stats import (
@@ -176,6 +177,15 @@ class FrontSearch:
         """(N,) index of each site's widest active front scale (-1: none)."""
         self._up_soa = [np.ascontiguousarray(self.up[:, c]) for c in range(3)]
         self._tol_base = cfg.clock_sigmas * max_sig
+        self.screen = True
+        """Skip seeds whose compiled lower bound (:mod:`tocsin.engine.front_bound`)
+        shows they cannot pass; the results are the same either way (tested)."""
+        self._scales_f64 = self.scales_ns.astype(np.float64)
+        self._hi_c = np.ascontiguousarray(self.hi, dtype=np.float64)
+        self._lo_c = np.ascontiguousarray(self.lo, dtype=np.float64)
+        self._ecef_c = np.ascontiguousarray(self.ecef, dtype=np.float64)
+        self._up_c = np.ascontiguousarray(self.up, dtype=np.float64)
+        self._sigma_c = np.ascontiguousarray(self.sigma, dtype=np.float64)
 
     def seed_weight(self, rates_per_ns: F64Array) -> F64Array:
         """Front evaluations per seed hit that can yield a front, per seed site (added
@@ -278,6 +288,12 @@ class FrontSearch:
         i_hi = int(np.searchsorted(t, int(t[seed_pos[-1]]) + self.ahead_ns[wide], side="right"))
         sub = i_lo + np.flatnonzero(use[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
+        if self.screen:
+            seed_pos = seed_pos[
+                self._screen(t_sub, s_sub, t[seed_pos], site[seed_pos], wide, p_max)
+            ]
+            if seed_pos.size == 0:
+                return none
         t_seed = t[seed_pos]
         s_seed_all = site[seed_pos]
         pr = window_pairs(t_sub, t_seed, back_ns=self.back_ns, ahead_ns=self.ahead_ns[wide])
@@ -329,6 +345,41 @@ class FrontSearch:
                     )
                 )
         return _merge(parts, n_f)
+
+    def _screen(
+        self,
+        t_sub: I64Array,
+        s_sub: I32Array,
+        t_seed: I64Array,
+        s_seed: I32Array,
+        wide: int,
+        p_max: float,
+    ) -> BoolArray:
+        """Which seeds (times ``t_seed``, sites ``s_seed``) may pass: their compiled
+        lower bound on the front p-value (:mod:`tocsin.engine.front_bound`) at some
+        scale is within :data:`BOUND_MARGIN` of ``p_max``. The others cannot pass."""
+        bounds = front_lower_bounds(
+            t_sub,
+            s_sub.astype(np.int64),
+            t_seed,
+            s_seed.astype(np.int64),
+            self.back_ns,
+            self.ahead_ns[wide],
+            K_MAX,
+            wide,
+            self._ecef_c,
+            self._up_c,
+            self._sigma_c,
+            self._lo_c,
+            self._hi_c,
+            self._scales_f64,
+            float(self._tol_base),
+            float(self.cfg.clock_sigmas),
+            MIN_TRIANGLE_ANGLE_DEG,
+            HORIZON_SLACK,
+        )
+        ok: BoolArray = np.asarray((bounds <= p_max * (1.0 + BOUND_MARGIN)).any(axis=1))
+        return ok
 
     def _evaluate_seeds(
         self,

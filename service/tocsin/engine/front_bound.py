@@ -1,0 +1,307 @@
+"""Compiled screen for the front search: a lower bound on each seed's front p-value.
+
+The front statistic (:mod:`tocsin.engine.front`) solves a plane front for every
+pair of a seed's neighbour hits and both mirror solutions, and counts the further
+hits each predicts. In numpy that is a dozen (rows x neighbours) arrays per seed
+and the bulk of the engine's time, although almost every seed ends far above any
+reporting threshold. This module does the same per-row arithmetic in one compiled
+pass per seed (numba, no Python per hit) and returns, per seed and front scale,
+
+    B = min over rows with m >= 4 of  G(log_u, m - 3) * (1 - exp(-prod(rho) / C(m - 1, 2))),
+
+the smallest of the per-row lower bounds that :meth:`FrontSearch._at_scale`
+applies to its best row (``keep``). Since the best row is one of the rows, ``B``
+is at most that bound, and every further step of the exact p only raises it, so a
+seed with ``B > p_max`` cannot pass and need not be searched in numpy.
+
+Conservative by construction, so the candidates do not change:
+
+* ``rho`` uses each slot's full width; dead time only shortens the width that the
+  exact search uses and so raises its ``rho`` and its bound;
+* a seed is kept when ``B <= p_max * (1 + BOUND_MARGIN)``: rounding differences
+  between this loop and numpy's vector arithmetic (~1e-16 relative) cannot drop it;
+* kept seeds go through the unchanged numpy search, which alone decides.
+
+``tests/test_front_bound.py`` checks that the screened search returns exactly the
+unscreened one on dense data with many seeds near the threshold.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numba
+import numpy as np
+
+from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I64Array
+
+BOUND_MARGIN = 1.0e-6
+"""Relative margin on ``p_max`` before a seed is screened out (rounding only)."""
+
+_NO_BOUND = math.inf
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _fisher_sf(log_u: float, k: int) -> float:
+    """``P(Gamma(k, 1) >= -log_u)`` for integer ``k >= 1`` (1 for ``k <= 0``)."""
+    if k <= 0:
+        return 1.0
+    x = -log_u
+    term = 1.0
+    total = 1.0
+    for i in range(1, k):
+        term *= x / i
+        total += term
+    return min(1.0, math.exp(-x) * total)
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _min_angle_deg(bj: F64Array, bk: F64Array, twice_area: float) -> float:
+    """Smallest interior angle (deg) of the triangle with sides ``bj``, ``bk`` at one
+    corner (as :func:`tocsin.engine.geometry.triangle_min_angle_deg`)."""
+    l1 = math.sqrt(bj[0] * bj[0] + bj[1] * bj[1] + bj[2] * bj[2])
+    l2 = math.sqrt(bk[0] * bk[0] + bk[1] * bk[1] + bk[2] * bk[2])
+    dx, dy, dz = bk[0] - bj[0], bk[1] - bj[1], bk[2] - bj[2]
+    l3 = math.sqrt(dx * dx + dy * dy + dz * dz)
+    lo = min(l1, l2, l3)
+    hi = max(l1, l2, l3)
+    mid = l1 + l2 + l3 - lo - hi
+    denom = mid * hi
+    if not denom > 0.0:
+        return 0.0
+    s = min(max(twice_area / denom, 0.0), 1.0)
+    return math.degrees(math.asin(s))
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _seed_bounds(
+    kk: int,
+    nbs: I64Array,
+    nbd: F64Array,
+    s: int,
+    out_row: F64Array,
+    buf: F64Array,
+    flags: BoolArray,
+    vec: F64Array,
+    wide: int,
+    ecef: F64Array,
+    up: F64Array,
+    sigma: F64Array,
+    lo: F64Array,
+    hi: F64Array,
+    scales_ns: F64Array,
+    tol_base_ns: float,
+    k_sig: float,
+    min_angle_deg: float,
+    horizon_slack: float,
+) -> None:
+    """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
+    its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
+    ``buf`` (7, K), ``flags`` (3, K) and ``vec`` (8, 3) are scratch space (K >= kk)."""
+    c = C_M_PER_NS
+    tol_wide = tol_base_ns + scales_ns[wide]
+    bl = buf[0:3].T  # (k_max, 3) view
+    delay, base_delta, abs_resid, width = buf[3], buf[4], buf[5], buf[6]
+    others, in_slot, cons = flags[0], flags[1], flags[2]
+    bj, bk, w, u_j, u_k, e3, n0, nv = vec[0], vec[1], vec[2], vec[3], vec[4], vec[5], vec[6], vec[7]
+    for col in range(kk):
+        site_l = nbs[col]
+        for q in range(3):
+            bl[col, q] = ecef[s, q] - ecef[site_l, q]
+    for a in range(kk):
+        sa = nbs[a]
+        for b in range(a + 1, kk):
+            sb = nbs[b]
+            if sa == sb:
+                continue
+            # --- the triple (seed, a, b), as solve_triples
+            for q in range(3):
+                bj[q] = bl[a, q]
+                bk[q] = bl[b, q]
+            dj = nbd[a] * c
+            dk = nbd[b] * c
+            w[0] = bj[1] * bk[2] - bj[2] * bk[1]
+            w[1] = bj[2] * bk[0] - bj[0] * bk[2]
+            w[2] = bj[0] * bk[1] - bj[1] * bk[0]
+            w2 = w[0] * w[0] + w[1] * w[1] + w[2] * w[2]
+            if not (np.isfinite(w2) and w2 > 0.0):
+                continue
+            if _min_angle_deg(bj, bk, math.sqrt(w2)) < min_angle_deg:
+                continue
+            u_j[0] = (bk[1] * w[2] - bk[2] * w[1]) / w2
+            u_j[1] = (bk[2] * w[0] - bk[0] * w[2]) / w2
+            u_j[2] = (bk[0] * w[1] - bk[1] * w[0]) / w2
+            u_k[0] = (w[1] * bj[2] - w[2] * bj[1]) / w2
+            u_k[1] = (w[2] * bj[0] - w[0] * bj[2]) / w2
+            u_k[2] = (w[0] * bj[1] - w[1] * bj[0]) / w2
+            rw = math.sqrt(w2)
+            for q in range(3):
+                e3[q] = w[q] / rw
+                n0[q] = dj * u_j[q] + dk * u_k[q]
+            norm0 = math.sqrt(n0[0] * n0[0] + n0[1] * n0[1] + n0[2] * n0[2])
+            alpha2 = 1.0 - norm0 * norm0
+            x = n0[0] * u_j[0] + n0[1] * u_j[1] + n0[2] * u_j[2]
+            y = n0[0] * u_k[0] + n0[1] * u_k[1] + n0[2] * u_k[2]
+            xy = abs(x) + abs(y)
+            over = alpha2 < 0.0
+            if over and not (norm0 - 1.0 <= c * tol_wide * xy / norm0):
+                continue
+            alpha = 0.0 if over else math.sqrt(alpha2)
+            scale0 = 1.0 / norm0 if (over and norm0 > 0.0) else 1.0
+            excess_norm = norm0 - 1.0 if over else 0.0
+            ss, sj, sk = sigma[s], sigma[sa], sigma[sb]
+            s_alpha2 = 2.0 * c * math.sqrt((x * sj) ** 2 + (y * sk) ** 2 + ((x + y) * ss) ** 2)
+            alpha_r = math.sqrt(max(alpha2, 0.0) + s_alpha2)
+            inv_alpha = 1.0 / alpha_r if alpha_r > 0.0 else 0.0
+            for mirror in range(2):
+                sign = 1.0 if mirror == 0 else -1.0
+                for q in range(3):
+                    nv[q] = n0[q] * scale0 + sign * alpha * e3[q]
+                if nv[0] * up[s, 0] + nv[1] * up[s, 1] + nv[2] * up[s, 2] < -horizon_slack:
+                    continue
+                # --- predictions for every neighbour hit (as _predict_rows)
+                for col in range(kk):
+                    site_l = nbs[col]
+                    bx, by, bz = bl[col, 0], bl[col, 1], bl[col, 2]
+                    delay[col] = (nv[0] * bx + nv[1] * by + nv[2] * bz) / c
+                    ul_j = bx * u_j[0] + by * u_j[1] + bz * u_j[2]
+                    ul_k = bx * u_k[0] + by * u_k[1] + bz * u_k[2]
+                    el = (bx * e3[0] + by * e3[1] + bz * e3[2]) * inv_alpha
+                    g_j = ul_j - sign * (x * el)
+                    g_k = ul_k - sign * (y * el)
+                    var = ((1.0 - g_j - g_k) * ss) ** 2 + (g_j * sj) ** 2 + (g_k * sk) ** 2
+                    base_delta[col] = k_sig * math.sqrt(sigma[site_l] ** 2 + var)
+                    abs_resid[col] = abs(nbd[col] - delay[col])
+                    above_l = (
+                        nv[0] * up[site_l, 0] + nv[1] * up[site_l, 1] + nv[2] * up[site_l, 2]
+                        >= -horizon_slack
+                    )
+                    others[col] = above_l and site_l != sa and site_l != sb
+                # --- every scale up to the widest (as _at_scale, best row -> any row)
+                for f in range(wide + 1):
+                    w_ns = scales_ns[f]
+                    tol_f = tol_base_ns + w_ns
+                    if excess_norm > c * tol_f * xy / max(norm0, 1e-300):
+                        continue
+                    for col in range(kk):
+                        site_l = nbs[col]
+                        hi_f = hi[f, s, site_l]
+                        in_slot[col] = nbd[col] <= hi_f
+                        width[col] = hi_f - lo[s, site_l]
+                    if not (in_slot[a] and in_slot[b]):
+                        continue
+                    n_cons = 0
+                    log_u = 0.0
+                    prod = 1.0
+                    for col in range(kk):
+                        delta = base_delta[col] + w_ns
+                        ok = others[col] and in_slot[col] and abs_resid[col] <= delta
+                        if ok:  # an earlier consistent hit of the same site wins
+                            site_l = nbs[col]
+                            for e in range(col):
+                                if cons[e] and nbs[e] == site_l:
+                                    ok = False
+                                    break
+                        cons[col] = ok
+                        if ok:
+                            n_cons += 1
+                            log_u += math.log(max(abs_resid[col] / delta, 1e-300))
+                            prod *= min(max(2.0 * delta / width[col], 0.0), 1.0)
+                    if n_cons == 0:
+                        continue
+                    m = 3 + n_cons
+                    c_m = (m - 1) * (m - 2) / 2.0
+                    bound = _fisher_sf(log_u, m - 3) * -math.expm1(-prod / c_m)
+                    if bound < out_row[f]:
+                        out_row[f] = bound
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def front_lower_bounds(
+    t: I64Array,
+    site: I64Array,
+    t_seed: I64Array,
+    seed_site: I64Array,
+    back_ns: int,
+    ahead_ns: int,
+    k_max: int,
+    wide: int,
+    ecef: F64Array,
+    up: F64Array,
+    sigma: F64Array,
+    lo: F64Array,
+    hi: F64Array,
+    scales_ns: F64Array,
+    tol_base_ns: float,
+    k_sig: float,
+    min_angle_deg: float,
+    horizon_slack: float,
+) -> F64Array:
+    """Lower bound ``B`` (module doc) per seed and front scale; ``inf`` where the seed
+    has fewer than three other sites in its slots, no row reaches m >= 4, or the
+    scale is above ``wide``.
+
+    ``t`` (sorted, GPS ns) and ``site`` are the hits of the sites that take part;
+    ``t_seed`` (sorted) and ``seed_site`` the seeds. A seed's neighbour hits are, as
+    in :meth:`FrontSearch._evaluate_wide`, the hits within ``[t_seed - back_ns,
+    t_seed + ahead_ns]`` at other sites inside their slot at scale ``wide``
+    (``lo <= delay <= hi[wide]``), the earliest ``k_max`` of them. ``ecef``/``up``
+    (N, 3) site positions (m) and local up vectors, ``sigma`` (N,) clock 1-sigma
+    (ns), ``lo`` (N, N) and ``hi`` (F, N, N) slot edges (ns), ``scales_ns`` (F,)
+    front scales; triples are solved with the tolerance of scale ``wide``, as the
+    exact search does.
+    """
+    n_seed = t_seed.size
+    out = np.full((n_seed, scales_ns.size), _NO_BOUND)
+    nbs = np.empty(k_max, dtype=np.int64)
+    nbd = np.empty(k_max)
+    buf = np.empty((7, k_max))
+    flags = np.zeros((3, k_max), dtype=np.bool_)
+    vec = np.empty((8, 3))
+    distinct = np.zeros(ecef.shape[0], dtype=np.int64)  # last seed (+1) that saw a site
+    left = 0
+    n = t.size
+    for i in range(n_seed):
+        ts = t_seed[i]
+        s = seed_site[i]
+        while left < n and t[left] < ts - back_ns:
+            left += 1
+        j = left
+        end = ts + ahead_ns
+        kk = 0
+        n_distinct = 0
+        while j < n and t[j] <= end and kk < k_max:
+            sl = site[j]
+            d = float(t[j] - ts)
+            if sl != s and d >= lo[s, sl] and d <= hi[wide, s, sl]:
+                nbs[kk] = sl
+                nbd[kk] = d
+                kk += 1
+                if distinct[sl] != i + 1:
+                    distinct[sl] = i + 1
+                    n_distinct += 1
+            j += 1
+        if n_distinct < 3:
+            continue
+        _seed_bounds(
+            kk,
+            nbs,
+            nbd,
+            s,
+            out[i],
+            buf,
+            flags,
+            vec,
+            wide,
+            ecef,
+            up,
+            sigma,
+            lo,
+            hi,
+            scales_ns,
+            tol_base_ns,
+            k_sig,
+            min_angle_deg,
+            horizon_slack,
+        )
+    return out
