@@ -274,9 +274,10 @@ def test_predict_rejects_bad_windows() -> None:
 
 
 def test_running_sums_equal_fresh_sums_bit_for_bit() -> None:
-    """Running sums extended block by block, from an origin an hour before the oldest
-    held bin (the empty bins are skipped, not summed), give predictions identical to
-    the bit to sums computed afresh from the same origin."""
+    """Running sums extended block by block, from an origin over an hour before the
+    first data and the oldest held bin (those empty bins are skipped, not summed),
+    give predictions identical to the bit to sums computed afresh from the same
+    origin. (Checked to fail when the skip reaches one bin into the data.)"""
     rng = np.random.default_rng(21)
     n_sites, cap = 7, 450  # the ring never wraps: no data is dropped
     store = BinStore(n_sites, bin_ns=BIN_NS, capacity=cap)

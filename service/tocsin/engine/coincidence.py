@@ -64,6 +64,7 @@ from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
 from tocsin.engine.slot_counts import slot_counts
+from tocsin.engine.slot_counts import warm_up as warm_slot_counts
 from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_top
 from tocsin.model.config import CoincidenceConfig
 from tocsin.model.registry import SiteRegistry
@@ -243,6 +244,7 @@ class CoincidenceTrigger:
         self.cfg = cfg
         self.geom = SlotGeometry(registry, clock_sigmas=cfg.clock_sigmas, scales_s=cfg.scales_s)
         self.n_sites = len(registry)
+        warm_slot_counts()
 
     @property
     def max_ahead_ns(self) -> int:

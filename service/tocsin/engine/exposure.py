@@ -21,6 +21,11 @@ class BinStore:
     bins before ``first_bin`` have been overwritten.
     """
 
+    data_start_bin: int | None = None
+    """First bin of the first block added (None: nothing added yet). Bins before it
+    were never written: they hold no hits and no live time. (A class default, so a
+    store pickled before this attribute existed reads as "not known".)"""
+
     def __init__(self, n_sites: int, *, bin_ns: int, capacity: int) -> None:
         if bin_ns <= 0 or capacity <= 0 or n_sites <= 0:
             raise ValueError(
@@ -40,12 +45,21 @@ class BinStore:
             return 0
         return self.end_bin - self.capacity
 
+    @property
+    def empty_before(self) -> int:
+        """Every bin before this one is empty as far as the store can tell: either
+        overwritten (before ``first_bin``) or never written (before ``data_start_bin``)."""
+        if self.data_start_bin is None:
+            return self.first_bin
+        return max(self.first_bin, self.data_start_bin)
+
     def add(self, block: Block) -> None:
         """Accumulate a block's hits and live time into its bins."""
         b0 = block.t_start // self.bin_ns
         b1 = -(-block.t_end // self.bin_ns)  # ceil
         if self.end_bin is None:
             self.end_bin = b0
+            self.data_start_bin = b0
         if b0 < self.end_bin - 1:
             raise ValueError(
                 f"block starting in bin {b0} is older than "

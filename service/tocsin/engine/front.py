@@ -52,6 +52,7 @@ from numpy.typing import NDArray
 from tocsin.engine.coincidence import SeedResult, SlotGeometry, concat_results
 from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
 from tocsin.engine.front_bound import BOUND_MARGIN, front_lower_bounds
+from tocsin.engine.front_bound import warm_up as warm_front_bound
 from tocsin.engine.geometry import MIN_TRIANGLE_ANGLE_DEG, ellipsoid_up, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
@@ -186,6 +187,7 @@ class FrontSearch:
         self._ecef_c = np.ascontiguousarray(self.ecef, dtype=np.float64)
         self._up_c = np.ascontiguousarray(self.up, dtype=np.float64)
         self._sigma_c = np.ascontiguousarray(self.sigma, dtype=np.float64)
+        warm_front_bound()
 
     def seed_weight(self, rates_per_ns: F64Array) -> F64Array:
         """Front evaluations per seed hit that can yield a front, per seed site (added

@@ -305,3 +305,29 @@ def front_lower_bounds(
             horizon_slack,
         )
     return out
+
+
+def warm_up() -> None:
+    """Load (or compile) the kernel now, on a tiny input (see
+    :func:`tocsin.engine.slot_counts.warm_up`)."""
+    one = np.zeros(1, dtype=np.int64)
+    front_lower_bounds(
+        one,
+        one,
+        one,
+        one,
+        0,
+        0,
+        1,
+        0,
+        np.zeros((1, 3)),
+        np.zeros((1, 3)),
+        np.zeros(1),
+        np.zeros((1, 1)),
+        np.zeros((1, 1, 1)),
+        np.zeros(1),
+        0.0,
+        0.0,
+        0.0,
+        0.0,
+    )

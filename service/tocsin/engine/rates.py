@@ -202,12 +202,12 @@ class CumulativeSums:
         """Add bins up to ``end_bin`` (exclusive)."""
         if end_bin <= self.end:
             return
-        if self.end < store.first_bin:
-            # Bins before the oldest held bin are empty (as _bin_terms pads them):
-            # the sums stand still over them, so their columns are the last ones
-            # (adding zeros changes no bit). Saves summing an hour of zeros per
-            # site at start-up.
-            skip_to = min(store.first_bin, end_bin)
+        if self.end < store.empty_before:
+            # Bins before the first data, or before the oldest held bin, are empty
+            # (_bin_terms pads the latter with zeros too): the sums stand still over
+            # them, so their columns are the last ones (adding zeros changes no bit).
+            # Saves summing an hour of zeros per site at start-up.
+            skip_to = min(store.empty_before, end_bin)
             j0, j1 = self.end - self.origin, skip_to - self.origin
             for j in self._keep[(self._keep > j0) & (self._keep <= j1)].tolist():
                 self._cols[j] = [x.copy() for x in self._last]
