@@ -83,6 +83,8 @@ def _seed_bounds(
     buf: F64Array,
     flags: BoolArray,
     vec: F64Array,
+    slot_w: F64Array,
+    slot_in: BoolArray,
     wide: int,
     ecef: F64Array,
     up: F64Array,
@@ -97,17 +99,27 @@ def _seed_bounds(
 ) -> None:
     """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
-    ``buf`` (7, K), ``flags`` (3, K) and ``vec`` (8, 3) are scratch space (K >= kk)."""
+    ``buf`` (10, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
+    ``slot_in`` (F, K) are scratch space (K >= kk)."""
     c = C_M_PER_NS
     tol_wide = tol_base_ns + scales_ns[wide]
     bl = buf[0:3].T  # (k_max, 3) view
-    delay, base_delta, abs_resid, width = buf[3], buf[4], buf[5], buf[6]
-    others, in_slot, cons = flags[0], flags[1], flags[2]
+    delay, base_delta, abs_resid, sig2 = buf[3], buf[4], buf[5], buf[6]
+    up_l = buf[7:10].T  # (k_max, 3) view
+    others, cons = flags[0], flags[2]
     bj, bk, w, u_j, u_k, e3, n0, nv = vec[0], vec[1], vec[2], vec[3], vec[4], vec[5], vec[6], vec[7]
+    # per neighbour hit, once per seed: baseline, local up, clock variance, and per
+    # scale whether it is in its slot and the slot's full width
     for col in range(kk):
         site_l = nbs[col]
         for q in range(3):
             bl[col, q] = ecef[s, q] - ecef[site_l, q]
+            up_l[col, q] = up[site_l, q]
+        sig2[col] = sigma[site_l] ** 2
+        for f in range(wide + 1):
+            hi_f = hi[f, s, site_l]
+            slot_in[f, col] = nbd[col] <= hi_f
+            slot_w[f, col] = hi_f - lo[s, site_l]
     for a in range(kk):
         sa = nbs[a]
         for b in range(a + 1, kk):
@@ -170,10 +182,10 @@ def _seed_bounds(
                     g_j = ul_j - sign * (x * el)
                     g_k = ul_k - sign * (y * el)
                     var = ((1.0 - g_j - g_k) * ss) ** 2 + (g_j * sj) ** 2 + (g_k * sk) ** 2
-                    base_delta[col] = k_sig * math.sqrt(sigma[site_l] ** 2 + var)
+                    base_delta[col] = k_sig * math.sqrt(sig2[col] + var)
                     abs_resid[col] = abs(nbd[col] - delay[col])
                     above_l = (
-                        nv[0] * up[site_l, 0] + nv[1] * up[site_l, 1] + nv[2] * up[site_l, 2]
+                        nv[0] * up_l[col, 0] + nv[1] * up_l[col, 1] + nv[2] * up_l[col, 2]
                         >= -horizon_slack
                     )
                     others[col] = above_l and site_l != sa and site_l != sb
@@ -183,11 +195,8 @@ def _seed_bounds(
                     tol_f = tol_base_ns + w_ns
                     if excess_norm > c * tol_f * xy / max(norm0, 1e-300):
                         continue
-                    for col in range(kk):
-                        site_l = nbs[col]
-                        hi_f = hi[f, s, site_l]
-                        in_slot[col] = nbd[col] <= hi_f
-                        width[col] = hi_f - lo[s, site_l]
+                    in_slot = slot_in[f]
+                    width = slot_w[f]
                     if not (in_slot[a] and in_slot[b]):
                         continue
                     n_cons = 0
@@ -255,7 +264,9 @@ def front_lower_bounds(
     out = np.full((n_seed, scales_ns.size), _NO_BOUND)
     nbs = np.empty(k_max, dtype=np.int64)
     nbd = np.empty(k_max)
-    buf = np.empty((7, k_max))
+    buf = np.empty((10, k_max))
+    slot_w = np.empty((scales_ns.size, k_max))
+    slot_in = np.zeros((scales_ns.size, k_max), dtype=np.bool_)
     flags = np.zeros((3, k_max), dtype=np.bool_)
     vec = np.empty((8, 3))
     distinct = np.zeros(ecef.shape[0], dtype=np.int64)  # last seed (+1) that saw a site
@@ -292,6 +303,8 @@ def front_lower_bounds(
             buf,
             flags,
             vec,
+            slot_w,
+            slot_in,
             wide,
             ecef,
             up,
