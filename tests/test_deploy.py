@@ -725,6 +725,9 @@ def test_systemd_units() -> None:
         assert s["NoNewPrivileges"] == ["yes"] and s["ProtectSystem"] == ["strict"]
         assert s["PrivateTmp"] == ["yes"] and s["EnvironmentFile"]
     assert systemd_seconds(svc["TimeoutStopSec"][0]) >= 60  # time to write the checkpoint
+    # the install is read-only (ProtectSystem=strict): the compiled kernels' cache
+    # goes to the service's own cache directory (/var/cache/<CacheDirectory>)
+    assert svc["Environment"] == [f"NUMBA_CACHE_DIR=/var/cache/{svc['CacheDirectory'][0]}"]
     # the environment files carry the variables the commands read
     for text in ((UNITS / "tocsin-agent@.service").read_text(), (DEPLOY / "README.md").read_text()):
         assert ENV_URL in text and ENV_PASSWORD in text

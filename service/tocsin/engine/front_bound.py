@@ -30,9 +30,9 @@ from __future__ import annotations
 
 import math
 
-import numba
 import numpy as np
 
+from tocsin.engine.jit import kernel
 from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I64Array
 
 BOUND_MARGIN = 1.0e-6
@@ -41,7 +41,7 @@ BOUND_MARGIN = 1.0e-6
 _NO_BOUND = math.inf
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@kernel
 def _fisher_sf(log_u: float, k: int) -> float:
     """``P(Gamma(k, 1) >= -log_u)`` for integer ``k >= 1`` (1 for ``k <= 0``)."""
     if k <= 0:
@@ -55,7 +55,7 @@ def _fisher_sf(log_u: float, k: int) -> float:
     return min(1.0, math.exp(-x) * total)
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@kernel
 def _min_angle_deg(bj: F64Array, bk: F64Array, twice_area: float) -> float:
     """Smallest interior angle (deg) of the triangle with sides ``bj``, ``bk`` at one
     corner (as :func:`tocsin.engine.geometry.triangle_min_angle_deg`)."""
@@ -73,7 +73,7 @@ def _min_angle_deg(bj: F64Array, bk: F64Array, twice_area: float) -> float:
     return math.degrees(math.asin(s))
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@kernel
 def _seed_bounds(
     kk: int,
     nbs: I64Array,
@@ -225,7 +225,7 @@ def _seed_bounds(
                         out_row[f] = bound
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@kernel
 def front_lower_bounds(
     t: I64Array,
     site: I64Array,

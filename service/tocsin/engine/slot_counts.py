@@ -12,13 +12,13 @@ and gives exactly the numpy count (``tests/test_slot_counts.py``).
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
+from tocsin.engine.jit import kernel
 from tocsin.types import I64Array
 
 
-@numba.njit(cache=True, nogil=True)
+@kernel
 def slot_counts(
     t: I64Array,
     site: I64Array,
