@@ -103,3 +103,20 @@ def test_arbitrary_json_never_crashes(obj: object) -> None:
         parse_batch(obj, reg)
     except BatchRejected as exc:
         assert exc.reason in REJECT_REASONS
+
+
+@pytest.mark.parametrize("n", [3, 64, 65, 500])
+@pytest.mark.parametrize("where", ["start", "middle", "end"])
+def test_unsorted_hits_name_the_first_descent(
+    small_registry: SiteRegistry, n: int, where: str
+) -> None:
+    """Short batches are checked in plain Python, long ones with numpy: both name the
+    first pair out of order (and a sorted batch of the same length passes)."""
+    t = [T0 + 1000 * k for k in range(n)]
+    parse_batch(good(t=t, amp=None), small_registry)
+    k = {"start": 0, "middle": n // 2, "end": n - 2}[where]
+    t[k], t[k + 1] = t[k + 1], t[k]  # the first descent is at k
+    with pytest.raises(BatchRejected) as err:
+        parse_batch(good(t=t, amp=None), small_registry)
+    assert err.value.reason == "unsorted_hits"
+    assert err.value.detail == f"t[{k + 1}]={t[k + 1]} is earlier than t[{k}]={t[k]}"
