@@ -33,7 +33,8 @@ except RuntimeError as exc:
 from tocsin.engine.slot_counts import slot_counts
 d = json.loads(sys.stdin.read())
 a = {{k: np.asarray(v, dtype=np.int64) for k, v in d.items() if k != "n"}}
-kk = slot_counts(a["t"], a["s"], a["prev"], a["ts"], a["ss"], a["lo"], a["hi"], d["n"], 500, 40000)
+edges = np.stack([a["lo"], a["hi"]], axis=1)
+kk = slot_counts(a["t"], a["s"], a["prev"], a["ts"], a["ss"], edges, d["n"], 500, 40000)
 print(json.dumps({{"plain": plain, "kk": kk.tolist()}}))
 """
 
@@ -74,6 +75,7 @@ def test_kernels_compile_in_memory_without_a_cache(tmp_path: Path) -> None:
     got = json.loads(out.stdout)
     assert "no locator available" in got["plain"]  # the condition really holds
     a = {k: np.asarray(v, dtype=np.int64) for k, v in data.items() if k != "n"}
-    here = slot_counts(a["t"], a["s"], a["prev"], a["ts"], a["ss"], a["lo"], a["hi"], n, 500, 40000)
+    edges = np.stack([a["lo"], a["hi"]], axis=1)
+    here = slot_counts(a["t"], a["s"], a["prev"], a["ts"], a["ss"], edges, n, 500, 40000)
     assert got["kk"] == here.tolist()
     assert max(got["kk"]) >= 2

@@ -86,6 +86,10 @@ class ScaleTables:
     hi_counted: I64Array
     """(N * N,) flat: the slot's upper edge (ns after the seed) where site j counts
     (``q > 0``), else a value below every lower edge (so nothing falls in it)."""
+    slot_edges: I64Array
+    """(N * N, 2): lower edge and ``hi_counted`` of each (seed site, site) pair side
+    by side, so the compiled count reads one cache line per neighbour hit; (0, 2)
+    when no seed site is active at this scale."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -289,7 +293,11 @@ class CoincidenceTrigger:
             prev_e = np.where(active, e, prev_e)
             tail_gt, point = _null_tables(q, active, e)
             hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
-            scales.append(ScaleTables(q, active, tail_gt, point, hi_counted.reshape(-1)))
+            hi_flat = hi_counted.reshape(-1)
+            edges = np.zeros((0, 2), dtype=np.int64)
+            if active.any():
+                edges = np.stack([self.geom.lo_flat_i, hi_flat], axis=1)
+            scales.append(ScaleTables(q, active, tail_gt, point, hi_flat, edges))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)
         return Tables(lam, tuple(scales), weight, float(np.dot(lam, weight)) * 1e9)
@@ -340,8 +348,7 @@ class CoincidenceTrigger:
             prev_sub,
             t_seed,
             ss.astype(np.int64),
-            self.geom.lo_flat_i,
-            st.hi_counted,
+            st.slot_edges,
             self.n_sites,
             self.geom.back_ns,
             self.geom.ahead_ns[k],

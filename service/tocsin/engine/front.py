@@ -182,8 +182,11 @@ class FrontSearch:
         """Skip seeds whose compiled lower bound (:mod:`tocsin.engine.front_bound`)
         shows they cannot pass; the results are the same either way (tested)."""
         self._scales_f64 = self.scales_ns.astype(np.float64)
-        self._hi_c = np.ascontiguousarray(self.hi, dtype=np.float64)
-        self._lo_c = np.ascontiguousarray(self.lo, dtype=np.float64)
+        # (N, N, 1 + F): lo then hi at every front scale, per (seed site, site) pair
+        self._edges = np.ascontiguousarray(
+            np.concatenate([self.lo[:, :, None], np.moveaxis(self.hi, 0, -1)], axis=2),
+            dtype=np.float64,
+        )
         self._ecef_c = np.ascontiguousarray(self.ecef, dtype=np.float64)
         self._up_c = np.ascontiguousarray(self.up, dtype=np.float64)
         self._sigma_c = np.ascontiguousarray(self.sigma, dtype=np.float64)
@@ -372,8 +375,7 @@ class FrontSearch:
             self._ecef_c,
             self._up_c,
             self._sigma_c,
-            self._lo_c,
-            self._hi_c,
+            self._edges,
             self._scales_f64,
             float(self._tol_base),
             float(self.cfg.clock_sigmas),

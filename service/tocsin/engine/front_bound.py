@@ -89,8 +89,7 @@ def _seed_bounds(
     ecef: F64Array,
     up: F64Array,
     sigma: F64Array,
-    lo: F64Array,
-    hi: F64Array,
+    edges: F64Array,
     scales_ns: F64Array,
     tol_base_ns: float,
     k_sig: float,
@@ -99,14 +98,15 @@ def _seed_bounds(
 ) -> None:
     """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
-    ``buf`` (10, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
+    ``buf`` (13, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
     ``slot_in`` (F, K) are scratch space (K >= kk)."""
     c = C_M_PER_NS
     tol_wide = tol_base_ns + scales_ns[wide]
     bl = buf[0:3].T  # (k_max, 3) view
     delay, base_delta, abs_resid, sig2 = buf[3], buf[4], buf[5], buf[6]
     up_l = buf[7:10].T  # (k_max, 3) view
-    others, cons = flags[0], flags[2]
+    ulj, ulk, el3 = buf[10], buf[11], buf[12]
+    others, cand_l, cons = flags[0], flags[1], flags[2]
     bj, bk, w, u_j, u_k, e3, n0, nv = vec[0], vec[1], vec[2], vec[3], vec[4], vec[5], vec[6], vec[7]
     # per neighbour hit, once per seed: baseline, local up, clock variance, and per
     # scale whether it is in its slot and the slot's full width
@@ -117,9 +117,9 @@ def _seed_bounds(
             up_l[col, q] = up[site_l, q]
         sig2[col] = sigma[site_l] ** 2
         for f in range(wide + 1):
-            hi_f = hi[f, s, site_l]
+            hi_f = edges[s, site_l, 1 + f]
             slot_in[f, col] = nbd[col] <= hi_f
-            slot_w[f, col] = hi_f - lo[s, site_l]
+            slot_w[f, col] = hi_f - edges[s, site_l, 0]
     for a in range(kk):
         sa = nbs[a]
         for b in range(a + 1, kk):
@@ -165,30 +165,49 @@ def _seed_bounds(
             s_alpha2 = 2.0 * c * math.sqrt((x * sj) ** 2 + (y * sk) ** 2 + ((x + y) * ss) ** 2)
             alpha_r = math.sqrt(max(alpha2, 0.0) + s_alpha2)
             inv_alpha = 1.0 / alpha_r if alpha_r > 0.0 else 0.0
+            # the triple's own projections of every further hit's baseline (the same
+            # for both mirror solutions); the triple's own sites never count
+            n_other = 0
+            for col in range(kk):
+                site_l = nbs[col]
+                cand_l[col] = site_l != sa and site_l != sb
+                if cand_l[col]:
+                    n_other += 1
+                    bx, by, bz = bl[col, 0], bl[col, 1], bl[col, 2]
+                    ulj[col] = bx * u_j[0] + by * u_j[1] + bz * u_j[2]
+                    ulk[col] = bx * u_k[0] + by * u_k[1] + bz * u_k[2]
+                    el3[col] = bx * e3[0] + by * e3[1] + bz * e3[2]
+            if n_other == 0:
+                continue
             for mirror in range(2):
                 sign = 1.0 if mirror == 0 else -1.0
                 for q in range(3):
                     nv[q] = n0[q] * scale0 + sign * alpha * e3[q]
                 if nv[0] * up[s, 0] + nv[1] * up[s, 1] + nv[2] * up[s, 2] < -horizon_slack:
                     continue
-                # --- predictions for every neighbour hit (as _predict_rows)
+                # --- predictions for every further hit (as _predict_rows)
+                any_other = False
                 for col in range(kk):
-                    site_l = nbs[col]
+                    others[col] = False
+                    if not cand_l[col]:
+                        continue
+                    if (
+                        nv[0] * up_l[col, 0] + nv[1] * up_l[col, 1] + nv[2] * up_l[col, 2]
+                        < -horizon_slack
+                    ):
+                        continue  # the source is below this site's horizon
+                    others[col] = True
+                    any_other = True
                     bx, by, bz = bl[col, 0], bl[col, 1], bl[col, 2]
                     delay[col] = (nv[0] * bx + nv[1] * by + nv[2] * bz) / c
-                    ul_j = bx * u_j[0] + by * u_j[1] + bz * u_j[2]
-                    ul_k = bx * u_k[0] + by * u_k[1] + bz * u_k[2]
-                    el = (bx * e3[0] + by * e3[1] + bz * e3[2]) * inv_alpha
-                    g_j = ul_j - sign * (x * el)
-                    g_k = ul_k - sign * (y * el)
+                    el = el3[col] * inv_alpha
+                    g_j = ulj[col] - sign * (x * el)
+                    g_k = ulk[col] - sign * (y * el)
                     var = ((1.0 - g_j - g_k) * ss) ** 2 + (g_j * sj) ** 2 + (g_k * sk) ** 2
                     base_delta[col] = k_sig * math.sqrt(sig2[col] + var)
                     abs_resid[col] = abs(nbd[col] - delay[col])
-                    above_l = (
-                        nv[0] * up_l[col, 0] + nv[1] * up_l[col, 1] + nv[2] * up_l[col, 2]
-                        >= -horizon_slack
-                    )
-                    others[col] = above_l and site_l != sa and site_l != sb
+                if not any_other:
+                    continue
                 # --- every scale up to the widest (as _at_scale, best row -> any row)
                 for f in range(wide + 1):
                     w_ns = scales_ns[f]
@@ -238,8 +257,7 @@ def front_lower_bounds(
     ecef: F64Array,
     up: F64Array,
     sigma: F64Array,
-    lo: F64Array,
-    hi: F64Array,
+    edges: F64Array,
     scales_ns: F64Array,
     tol_base_ns: float,
     k_sig: float,
@@ -256,15 +274,16 @@ def front_lower_bounds(
     t_seed + ahead_ns]`` at other sites inside their slot at scale ``wide``
     (``lo <= delay <= hi[wide]``), the earliest ``k_max`` of them. ``ecef``/``up``
     (N, 3) site positions (m) and local up vectors, ``sigma`` (N,) clock 1-sigma
-    (ns), ``lo`` (N, N) and ``hi`` (F, N, N) slot edges (ns), ``scales_ns`` (F,)
-    front scales; triples are solved with the tolerance of scale ``wide``, as the
-    exact search does.
+    (ns), ``edges`` (N, N, 1 + F) the slot edges (ns) of each (seed site, site)
+    pair side by side, ``lo`` then ``hi`` at every front scale (one cache line per
+    neighbour hit), ``scales_ns`` (F,) front scales; triples are solved with the
+    tolerance of scale ``wide``, as the exact search does.
     """
     n_seed = t_seed.size
     out = np.full((n_seed, scales_ns.size), _NO_BOUND)
     nbs = np.empty(k_max, dtype=np.int64)
     nbd = np.empty(k_max)
-    buf = np.empty((10, k_max))
+    buf = np.empty((13, k_max))
     slot_w = np.empty((scales_ns.size, k_max))
     slot_in = np.zeros((scales_ns.size, k_max), dtype=np.bool_)
     flags = np.zeros((3, k_max), dtype=np.bool_)
@@ -284,7 +303,7 @@ def front_lower_bounds(
         while j < n and t[j] <= end and kk < k_max:
             sl = site[j]
             d = float(t[j] - ts)
-            if sl != s and d >= lo[s, sl] and d <= hi[wide, s, sl]:
+            if sl != s and d >= edges[s, sl, 0] and d <= edges[s, sl, 1 + wide]:
                 nbs[kk] = sl
                 nbd[kk] = d
                 kk += 1
@@ -309,8 +328,7 @@ def front_lower_bounds(
             ecef,
             up,
             sigma,
-            lo,
-            hi,
+            edges,
             scales_ns,
             tol_base_ns,
             k_sig,
@@ -336,8 +354,7 @@ def warm_up() -> None:
         np.zeros((1, 3)),
         np.zeros((1, 3)),
         np.zeros(1),
-        np.zeros((1, 1)),
-        np.zeros((1, 1, 1)),
+        np.zeros((1, 1, 2)),
         np.zeros(1),
         0.0,
         0.0,

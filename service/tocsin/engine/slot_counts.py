@@ -25,8 +25,7 @@ def slot_counts(
     prev: I64Array,
     t_seed: I64Array,
     seed_site: I64Array,
-    lo_flat: I64Array,
-    hi_flat: I64Array,
+    edges: I64Array,
     n_sites: int,
     back_ns: int,
     ahead_ns: int,
@@ -36,8 +35,8 @@ def slot_counts(
     ``t`` (sorted, GPS ns) and ``site`` are the stream of hits that may count,
     ``prev`` each one's previous hit time of the same site (GPS ns; anything far
     earlier stands for none). ``t_seed`` (sorted) and ``seed_site`` are the seeds.
-    ``lo_flat``/``hi_flat`` (N*N, ns) are the slot edges per (seed site, site) pair,
-    ``hi_flat`` far negative for a site that does not count. A hit counts when
+    ``edges`` (N*N, 2, ns) holds the lower and upper slot edge per (seed site, site)
+    pair, the upper one far negative for a site that does not count. A hit counts when
     ``lo <= t - t_seed <= hi`` and its site's previous hit is before the slot start
     (so each site counts once, by its earliest hit in the slot). Neighbours are
     searched within ``[t_seed - back_ns, t_seed + ahead_ns]``, which must hold every slot.
@@ -57,8 +56,8 @@ def slot_counts(
         while j < n and t[j] <= end:
             pair = row + site[j]
             d = t[j] - ts
-            lo = lo_flat[pair]
-            if lo <= d <= hi_flat[pair] and prev[j] - ts < lo:
+            lo = edges[pair, 0]
+            if lo <= d <= edges[pair, 1] and prev[j] - ts < lo:
                 count += 1
             j += 1
         out[i] = count
@@ -70,4 +69,4 @@ def warm_up() -> None:
     tiny input, rather than in the middle of the first block: the first call in a
     process costs ~0.7 s even from numba's cache."""
     one = np.zeros(1, dtype=np.int64)
-    slot_counts(one, one, one, one, one, one, one, 1, 0, 0)
+    slot_counts(one, one, one, one, one, np.zeros((1, 2), dtype=np.int64), 1, 0, 0)
