@@ -530,6 +530,8 @@ def main(argv: list[str] | None = None) -> int:
     prev = previous_same_site(t_all, s_all)
     s64 = s_all.astype(np.int64)
     kk_box: list[I64Array] = []
+    slots = tab.scales[0].slots
+    assert slots is not None  # the scale is active (seeds were evaluated above)
 
     def compiled() -> None:
         kk_box.append(
@@ -539,7 +541,9 @@ def main(argv: list[str] | None = None) -> int:
                 prev,
                 t_all[seeds],
                 s64[seeds],
-                tab.scales[0].slot_edges,
+                slots.edges,
+                slots.counted,
+                slots.rows,
                 n,
                 one.geom.back_ns,
                 one.geom.ahead_ns[0],

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from tocsin.engine.slot_counts import slot_counts
+from tocsin.engine.slot_counts import slot_counts, slot_tables
 
 CHILD = """
 import json, sys
@@ -30,11 +30,14 @@ try:
     plain = "imported"
 except RuntimeError as exc:
     plain = str(exc)
-from tocsin.engine.slot_counts import slot_counts
+from tocsin.engine.slot_counts import slot_counts, slot_tables
 d = json.loads(sys.stdin.read())
 a = {{k: np.asarray(v, dtype=np.int64) for k, v in d.items() if k != "n"}}
-edges = np.stack([a["lo"], a["hi"]], axis=1)
-kk = slot_counts(a["t"], a["s"], a["prev"], a["ts"], a["ss"], edges, d["n"], 500, 40000)
+tab = slot_tables(a["lo"], a["hi"], d["n"])
+kk = slot_counts(
+    a["t"], a["s"], a["prev"], a["ts"], a["ss"], tab.edges, tab.counted, tab.rows, d["n"],
+    500, 40000,
+)
 print(json.dumps({{"plain": plain, "kk": kk.tolist()}}))
 """
 
@@ -75,7 +78,9 @@ def test_kernels_compile_in_memory_without_a_cache(tmp_path: Path) -> None:
     got = json.loads(out.stdout)
     assert "no locator available" in got["plain"]  # the condition really holds
     a = {k: np.asarray(v, dtype=np.int64) for k, v in data.items() if k != "n"}
-    edges = np.stack([a["lo"], a["hi"]], axis=1)
-    here = slot_counts(a["t"], a["s"], a["prev"], a["ts"], a["ss"], edges, n, 500, 40000)
+    tab = slot_tables(a["lo"], a["hi"], n)
+    here = slot_counts(
+        a["t"], a["s"], a["prev"], a["ts"], a["ss"], tab.edges, tab.counted, tab.rows, n, 500, 40000
+    )
     assert got["kk"] == here.tolist()
     assert max(got["kk"]) >= 2

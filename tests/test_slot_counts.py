@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from tocsin.engine.coincidence import NO_PREVIOUS_NS, previous_same_site
-from tocsin.engine.slot_counts import slot_counts
+from tocsin.engine.slot_counts import slot_counts, slot_tables
 
 
 def direct_counts(
@@ -39,7 +39,11 @@ def direct_counts(
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3])
-def test_slot_counts_equal_a_direct_count(seed: int) -> None:
+@pytest.mark.parametrize("edges", ["spread", "even"])
+def test_slot_counts_equal_a_direct_count(seed: int, edges: str) -> None:
+    """``spread``: upper edges anywhere in 0-40 us (most hits need their pair's
+    edges); ``even``: all within 30-31 us and one seed site counting nothing (most
+    hits are decided by the seed site's row bounds alone)."""
     rng = np.random.default_rng(seed)
     n_sites, n_hits = 9, 3000
     t = np.sort(rng.integers(0, 10_000_000, n_hits)).astype(np.int64)
@@ -48,16 +52,22 @@ def test_slot_counts_equal_a_direct_count(seed: int) -> None:
     hi = rng.integers(0, 40_000, (n_sites, n_sites)).astype(np.int64)
     np.fill_diagonal(hi, NO_PREVIOUS_NS)  # a seed's own site never counts
     hi[:, 4] = NO_PREVIOUS_NS  # nor does site 4 for anyone
+    if edges == "even":
+        hi = np.where(hi > NO_PREVIOUS_NS, 30_000 + hi % 1000, hi)
+        hi[2, :] = NO_PREVIOUS_NS  # seeds of site 2 count nothing
     seeds = np.sort(rng.choice(n_hits, 600, replace=False))
     t_seed, seed_site = t[seeds], site[seeds]
     prev = previous_same_site(t, site.astype(np.int32))
+    tab = slot_tables(lo.ravel(), hi.ravel(), n_sites)
     got = slot_counts(
         t,
         site,
         prev,
         t_seed,
         seed_site,
-        np.stack([lo.ravel(), hi.ravel()], axis=1),
+        tab.edges,
+        tab.counted,
+        tab.rows,
         n_sites,
         int(-lo.min()),
         int(hi.max()),

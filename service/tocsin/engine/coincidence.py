@@ -63,7 +63,7 @@ import numpy as np
 from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
-from tocsin.engine.slot_counts import slot_counts
+from tocsin.engine.slot_counts import SlotTables, slot_counts, slot_tables
 from tocsin.engine.slot_counts import warm_up as warm_slot_counts
 from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_top
 from tocsin.model.config import CoincidenceConfig
@@ -86,10 +86,8 @@ class ScaleTables:
     hi_counted: I64Array
     """(N * N,) flat: the slot's upper edge (ns after the seed) where site j counts
     (``q > 0``), else a value below every lower edge (so nothing falls in it)."""
-    slot_edges: I64Array
-    """(N * N, 2): lower edge and ``hi_counted`` of each (seed site, site) pair side
-    by side, so the compiled count reads one cache line per neighbour hit; (0, 2)
-    when no seed site is active at this scale."""
+    slots: SlotTables | None
+    """The edges laid out for the compiled count (None: no seed site is active)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -199,6 +197,8 @@ def _null_tables(q: F64Array, active: BoolArray, e: F64Array) -> tuple[F64Array,
     rows = np.flatnonzero(active)
     mu = float(e[rows].max()) if rows.size else 0.0
     k_top = min(n, int(np.ceil(mu + TAIL_SD * np.sqrt(mu) + 12)))
+    if rows.size == 0:  # nothing is evaluated at this scale: read-only placeholders
+        return np.broadcast_to(1.0, (n, n + 1)), np.broadcast_to(0.0, (n, n + 1))
     tail_gt = np.ones((n, n + 1))
     point = np.zeros((n, n + 1))
     if rows.size and k_top >= n:  # small network: the full, exact distribution
@@ -292,12 +292,14 @@ class CoincidenceTrigger:
             active = ok & fresh & enough & quiet & sparse & (lam > 0)
             prev_e = np.where(active, e, prev_e)
             tail_gt, point = _null_tables(q, active, e)
-            hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
-            hi_flat = hi_counted.reshape(-1)
-            edges = np.zeros((0, 2), dtype=np.int64)
             if active.any():
-                edges = np.stack([self.geom.lo_flat_i, hi_flat], axis=1)
-            scales.append(ScaleTables(q, active, tail_gt, point, hi_flat, edges))
+                hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
+                hi_flat = hi_counted.reshape(-1)
+                slots: SlotTables | None = slot_tables(self.geom.lo_flat_i, hi_flat, n)
+            else:  # nothing is evaluated at this scale
+                hi_flat = np.broadcast_to(np.int64(NO_PREVIOUS_NS), (n * n,))
+                slots = None
+            scales.append(ScaleTables(q, active, tail_gt, point, hi_flat, slots))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)
         return Tables(lam, tuple(scales), weight, float(np.dot(lam, weight)) * 1e9)
@@ -341,6 +343,9 @@ class CoincidenceTrigger:
         prev_sub = previous_same_site(t_sub, s_sub) if prev is None else prev[sub]
         n_seed = seed_pos.size
         ss = site[seed_pos]
+        slots = st.slots
+        if slots is None:  # seeds are only evaluated where some seed site is active
+            raise RuntimeError(f"scale {k} has active seeds but no slot tables")
         # the number of other sites in each seed's slots (compiled, no pair arrays)
         kk = slot_counts(
             t_sub,
@@ -348,7 +353,9 @@ class CoincidenceTrigger:
             prev_sub,
             t_seed,
             ss.astype(np.int64),
-            st.slot_edges,
+            slots.edges,
+            slots.counted,
+            slots.rows,
             self.n_sites,
             self.geom.back_ns,
             self.geom.ahead_ns[k],

@@ -12,10 +12,49 @@ and gives exactly the numpy count (``tests/test_slot_counts.py``).
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from tocsin.engine.jit import kernel
-from tocsin.types import I64Array
+from tocsin.types import BoolArray, I64Array
+
+
+@dataclass(frozen=True, slots=True)
+class SlotTables:
+    """Slot edges of one scale laid out for :func:`slot_counts`."""
+
+    edges: I64Array
+    """(N * N, 2): lower and upper edge (ns) per (seed site, site) pair, side by side."""
+    counted: BoolArray
+    """(N * N,): the pair's slot can hold a hit (upper edge >= lower edge)."""
+    rows: I64Array
+    """(N, 3) per seed site, over its counted pairs: the highest lower edge, the lowest
+    upper edge and the lowest lower edge (ns); a hit between the first two whose
+    site's previous hit is before the third is in its slot without a look-up of
+    its pair (sentinels make that test fail for a row with no counted pair)."""
+
+
+def slot_tables(lo_flat: I64Array, hi_flat: I64Array, n_sites: int) -> SlotTables:
+    """:class:`SlotTables` from flat (N * N,) lower and upper slot edges (ns); a pair
+    whose upper edge is below its lower edge does not count."""
+    edges = np.ascontiguousarray(np.stack([lo_flat, hi_flat], axis=1), dtype=np.int64)
+    counted = hi_flat >= lo_flat
+    lo2 = lo_flat.reshape(n_sites, n_sites)
+    hi2 = hi_flat.reshape(n_sites, n_sites)
+    c2 = counted.reshape(n_sites, n_sites)
+    big, small = np.iinfo(np.int64).max, np.iinfo(np.int64).min
+    rows = np.stack(
+        [
+            np.where(c2, lo2, small).max(axis=1, initial=small),
+            np.where(c2, hi2, big).min(axis=1, initial=big),
+            np.where(c2, lo2, big).min(axis=1, initial=big),
+        ],
+        axis=1,
+    )
+    none = ~c2.any(axis=1)
+    rows[none] = (big, small, small)
+    return SlotTables(edges, np.ascontiguousarray(counted), np.ascontiguousarray(rows))
 
 
 @kernel
@@ -26,6 +65,8 @@ def slot_counts(
     t_seed: I64Array,
     seed_site: I64Array,
     edges: I64Array,
+    counted: BoolArray,
+    rows: I64Array,
     n_sites: int,
     back_ns: int,
     ahead_ns: int,
@@ -35,11 +76,11 @@ def slot_counts(
     ``t`` (sorted, GPS ns) and ``site`` are the stream of hits that may count,
     ``prev`` each one's previous hit time of the same site (GPS ns; anything far
     earlier stands for none). ``t_seed`` (sorted) and ``seed_site`` are the seeds.
-    ``edges`` (N*N, 2, ns) holds the lower and upper slot edge per (seed site, site)
-    pair, the upper one far negative for a site that does not count. A hit counts when
-    ``lo <= t - t_seed <= hi`` and its site's previous hit is before the slot start
-    (so each site counts once, by its earliest hit in the slot). Neighbours are
-    searched within ``[t_seed - back_ns, t_seed + ahead_ns]``, which must hold every slot.
+    ``edges``, ``counted`` and ``rows`` are a scale's :class:`SlotTables`. A hit
+    counts when its pair is counted, ``lo <= t - t_seed <= hi`` and its site's
+    previous hit is before the slot start (so each site counts once, by its
+    earliest hit in the slot). Neighbours are searched within ``[t_seed - back_ns,
+    t_seed + ahead_ns]``, which must hold every slot.
     """
     n_seed = t_seed.size
     out = np.zeros(n_seed, dtype=np.int64)
@@ -47,7 +88,9 @@ def slot_counts(
     n = t.size
     for i in range(n_seed):
         ts = t_seed[i]
-        row = seed_site[i] * n_sites
+        s = seed_site[i]
+        row = s * n_sites
+        lo_max, hi_min, lo_min = rows[s, 0], rows[s, 1], rows[s, 2]
         while left < n and t[left] < ts - back_ns:
             left += 1
         j = left
@@ -55,10 +98,15 @@ def slot_counts(
         count = 0
         while j < n and t[j] <= end:
             pair = row + site[j]
-            d = t[j] - ts
-            lo = edges[pair, 0]
-            if lo <= d <= edges[pair, 1] and prev[j] - ts < lo:
-                count += 1
+            if counted[pair]:
+                d = t[j] - ts
+                before = prev[j] - ts
+                if lo_max <= d <= hi_min and before < lo_min:
+                    count += 1  # inside every counted slot of this seed site
+                else:
+                    lo = edges[pair, 0]
+                    if lo <= d <= edges[pair, 1] and before < lo:
+                        count += 1
             j += 1
         out[i] = count
     return out
@@ -69,4 +117,5 @@ def warm_up() -> None:
     tiny input, rather than in the middle of the first block: the first call in a
     process costs ~0.7 s even from numba's cache."""
     one = np.zeros(1, dtype=np.int64)
-    slot_counts(one, one, one, one, one, np.zeros((1, 2), dtype=np.int64), 1, 0, 0)
+    tab = slot_tables(one, one, 1)
+    slot_counts(one, one, one, one, one, tab.edges, tab.counted, tab.rows, 1, 0, 0)
