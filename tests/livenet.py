@@ -115,10 +115,13 @@ def running_service(stack: contextlib.ExitStack, config: Path) -> ServiceProcess
 
 
 def journal_lines(data: Path) -> list[dict[str, object]]:
+    """The journal's complete lines. The service may be appending while this reads
+    (it writes through a buffer and fsyncs in groups), so a last line without its
+    newline is not yet written and is left out, as the service's own reader does."""
     out = []
     for seg in sorted((data / "journal").glob("journal-*.jsonl")):
-        for line in seg.read_bytes().splitlines():
-            if line.strip():
+        for line in seg.read_bytes().splitlines(keepends=True):
+            if line.endswith(b"\n") and line.strip():
                 out.append(orjson.loads(line))
     return out
 
