@@ -56,11 +56,10 @@ def _fisher_sf(log_u: float, k: int) -> float:
 
 
 @kernel
-def _min_angle_deg(bj: F64Array, bk: F64Array, twice_area: float) -> float:
-    """Smallest interior angle (deg) of the triangle with sides ``bj``, ``bk`` at one
-    corner (as :func:`tocsin.engine.geometry.triangle_min_angle_deg`)."""
-    l1 = math.sqrt(bj[0] * bj[0] + bj[1] * bj[1] + bj[2] * bj[2])
-    l2 = math.sqrt(bk[0] * bk[0] + bk[1] * bk[1] + bk[2] * bk[2])
+def _min_angle_sin(l1: float, l2: float, bj: F64Array, bk: F64Array, twice_area: float) -> float:
+    """Sine of the smallest interior angle of the triangle with sides ``bj``, ``bk``
+    (lengths ``l1``, ``l2``) at one corner (as
+    :func:`tocsin.engine.geometry.triangle_min_angle_deg`, before its arcsin)."""
     dx, dy, dz = bk[0] - bj[0], bk[1] - bj[1], bk[2] - bj[2]
     l3 = math.sqrt(dx * dx + dy * dy + dz * dz)
     lo = min(l1, l2, l3)
@@ -69,8 +68,7 @@ def _min_angle_deg(bj: F64Array, bk: F64Array, twice_area: float) -> float:
     denom = mid * hi
     if not denom > 0.0:
         return 0.0
-    s = min(max(twice_area / denom, 0.0), 1.0)
-    return math.degrees(math.asin(s))
+    return min(max(twice_area / denom, 0.0), 1.0)
 
 
 @kernel
@@ -98,14 +96,15 @@ def _seed_bounds(
 ) -> None:
     """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
-    ``buf`` (13, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
+    ``buf`` (14, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
     ``slot_in`` (F, K) are scratch space (K >= kk)."""
     c = C_M_PER_NS
     tol_wide = tol_base_ns + scales_ns[wide]
     bl = buf[0:3].T  # (k_max, 3) view
     delay, base_delta, abs_resid, sig2 = buf[3], buf[4], buf[5], buf[6]
     up_l = buf[7:10].T  # (k_max, 3) view
-    ulj, ulk, el3 = buf[10], buf[11], buf[12]
+    ulj, ulk, el3, blen = buf[10], buf[11], buf[12], buf[13]
+    sin_min = math.sin(math.radians(min_angle_deg)) * (1.0 - 1e-12)
     others, cand_l, cons = flags[0], flags[1], flags[2]
     bj, bk, w, u_j, u_k, e3, n0, nv = vec[0], vec[1], vec[2], vec[3], vec[4], vec[5], vec[6], vec[7]
     # per neighbour hit, once per seed: baseline, local up, clock variance, and per
@@ -116,6 +115,7 @@ def _seed_bounds(
             bl[col, q] = ecef[s, q] - ecef[site_l, q]
             up_l[col, q] = up[site_l, q]
         sig2[col] = sigma[site_l] ** 2
+        blen[col] = math.sqrt(bl[col, 0] ** 2 + bl[col, 1] ** 2 + bl[col, 2] ** 2)
         for f in range(wide + 1):
             hi_f = edges[s, site_l, 1 + f]
             slot_in[f, col] = nbd[col] <= hi_f
@@ -138,8 +138,8 @@ def _seed_bounds(
             w2 = w[0] * w[0] + w[1] * w[1] + w[2] * w[2]
             if not (np.isfinite(w2) and w2 > 0.0):
                 continue
-            if _min_angle_deg(bj, bk, math.sqrt(w2)) < min_angle_deg:
-                continue
+            if _min_angle_sin(blen[a], blen[b], bj, bk, math.sqrt(w2)) < sin_min:
+                continue  # nearly collinear (the threshold errs towards keeping)
             u_j[0] = (bk[1] * w[2] - bk[2] * w[1]) / w2
             u_j[1] = (bk[2] * w[0] - bk[0] * w[2]) / w2
             u_j[2] = (bk[0] * w[1] - bk[1] * w[0]) / w2
@@ -283,7 +283,7 @@ def front_lower_bounds(
     out = np.full((n_seed, scales_ns.size), _NO_BOUND)
     nbs = np.empty(k_max, dtype=np.int64)
     nbd = np.empty(k_max)
-    buf = np.empty((13, k_max))
+    buf = np.empty((14, k_max))
     slot_w = np.empty((scales_ns.size, k_max))
     slot_in = np.zeros((scales_ns.size, k_max), dtype=np.bool_)
     flags = np.zeros((3, k_max), dtype=np.bool_)
