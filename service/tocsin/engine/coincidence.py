@@ -248,6 +248,10 @@ class CoincidenceTrigger:
         self.cfg = cfg
         self.geom = SlotGeometry(registry, clock_sigmas=cfg.clock_sigmas, scales_s=cfg.scales_s)
         self.n_sites = len(registry)
+        n = self.n_sites
+        not_self = ~np.eye(n, dtype=bool)
+        self._mean_w = [(w * not_self).sum(axis=1) / max(n - 1, 1) for w in self.geom.width]
+        """Per scale, each seed site's mean slot width (ns) over the other sites."""
         warm_slot_counts()
 
     @property
@@ -284,8 +288,7 @@ class CoincidenceTrigger:
             enough = allowed.sum(axis=1) >= self.cfg.min_multiplicity - 1
             # A site too busy to count as a neighbour at this scale does not seed
             # either: its hits would re-find every cluster of quieter sites.
-            mean_w = (self.geom.width[k] * not_self).sum(axis=1) / max(n - 1, 1)
-            quiet = -np.expm1(-lam * mean_w) <= self.cfg.occupancy_cap
+            quiet = -np.expm1(-lam * self._mean_w[k]) <= self.cfg.occupancy_cap
             # A multiplicity test where chance alone fills many slots has no power
             # (that is the excess trigger's ground): not evaluated, not a trial.
             sparse = e <= self.cfg.max_expected_neighbours

@@ -27,6 +27,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import special
 
+from tocsin.engine.jit import kernel
 from tocsin.types import F64Array
 
 __all__ = [
@@ -122,16 +123,30 @@ def poisson_binomial_pmf_top(q: ArrayLike, k_top: int) -> F64Array:
         out = np.zeros((r, k_top + 1))
         out[:, : n + 1] = full
         return _f64(out)
-    qt = np.ascontiguousarray(qq.T)  # layouts as in poisson_binomial_pmf_rows
-    pmf = np.zeros((k_top + 1, r), dtype=np.float64)
-    pmf[0] = 1.0
-    for j in range(n):
-        qj = qt[j]
-        pj = 1.0 - qj
-        pmf[k_top] += pmf[k_top - 1] * qj
-        pmf[1:k_top] = pmf[1:k_top] * pj + pmf[: k_top - 1] * qj
-        pmf[0] *= pj
-    return np.ascontiguousarray(pmf.T)
+    return _pmf_top_rows(np.ascontiguousarray(qq), k_top)
+
+
+@kernel
+def _pmf_top_rows(q: F64Array, k_top: int) -> F64Array:
+    """The truncated DP of :func:`poisson_binomial_pmf_top`, one row at a time (the
+    row's k_top + 1 states stay in cache; compiled). Per element the same operations
+    in the same order as a vectorised step ``pmf[top] += pmf[top-1] q``,
+    ``pmf[1:top] = pmf[1:top] p + pmf[:top-1] q``, ``pmf[0] *= p``: each state is
+    updated from the old value of the one below, so going downwards reads it
+    before it changes."""
+    r, n = q.shape
+    out = np.zeros((r, k_top + 1))
+    for i in range(r):
+        pmf = out[i]
+        pmf[0] = 1.0
+        for j in range(n):
+            qj = q[i, j]
+            pj = 1.0 - qj
+            pmf[k_top] += pmf[k_top - 1] * qj
+            for k in range(k_top - 1, 0, -1):
+                pmf[k] = pmf[k] * pj + pmf[k - 1] * qj
+            pmf[0] *= pj
+    return out
 
 
 def poisson_binomial_pmf(q: ArrayLike) -> F64Array:
