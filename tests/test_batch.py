@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import pytest
-from hypothesis import given
+from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
 from tocsin.errors import BatchRejected
@@ -120,3 +120,70 @@ def test_unsorted_hits_name_the_first_descent(
         parse_batch(good(t=t, amp=None), small_registry)
     assert err.value.reason == "unsorted_hits"
     assert err.value.detail == f"t[{k + 1}]={t[k + 1]} is earlier than t[{k}]={t[k]}"
+
+
+_valid_int = st.integers(min_value=0, max_value=2**63 - 1)
+_any_int = st.one_of(
+    st.integers(min_value=-3, max_value=2**64), st.booleans(), st.floats(), st.text(max_size=2)
+)
+
+
+def _mostly(
+    valid: st.SearchStrategy[object], other: st.SearchStrategy[object]
+) -> st.SearchStrategy[object]:
+    """``valid`` nine times in ten (so the plain path is often taken), else ``other``."""
+    return st.tuples(st.integers(0, 9), valid, other).map(lambda x: x[1] if x[0] else x[2])
+
+
+_elem = _mostly(_valid_int, _any_int)
+
+
+@settings(max_examples=500)
+@given(
+    v=_mostly(st.just(1), st.sampled_from([True, 1.0, 2])),
+    site=_mostly(st.just("alder-fen-1"), st.integers()),
+    seq=_mostly(_valid_int, _any_int),
+    live=_mostly(st.lists(_elem, min_size=2, max_size=2), st.lists(_elem, max_size=3)),
+    t=st.lists(_elem, max_size=6),
+    amp=_mostly(st.none(), st.lists(st.floats(), max_size=2)),
+    extra=_mostly(
+        st.just({}), st.dictionaries(st.sampled_from(["x", "recv"]), st.integers(), max_size=1)
+    ),
+)
+def test_the_plain_path_accepts_only_what_pydantic_accepts(
+    v: object,
+    site: object,
+    seq: object,
+    live: object,
+    t: object,
+    amp: object,
+    extra: dict[str, int],
+) -> None:
+    """Property: the validator-free path for plainly valid batches accepts a batch
+    only if pydantic's strict model accepts it too, with the same values."""
+    from tocsin.model.batch import _BatchV1, _plainly_valid
+
+    obj = {"v": v, "site": site, "seq": seq, "live": live, "t": t, "amp": amp, **extra}
+    plain = _plainly_valid(obj)
+    event("plain path" if plain is not None else "validator")
+    if plain is not None:
+        m = _BatchV1.model_validate(obj)
+        assert (plain.site, plain.seq, plain.live, plain.t, plain.amp) == (
+            m.site,
+            m.seq,
+            m.live,
+            m.t,
+            m.amp,
+        )
+
+
+def test_the_plain_path_takes_the_common_batch() -> None:
+    """The typical batch (no amplitudes) goes the validator-free way; one with
+    amplitudes, or a hit time given as a float, goes through pydantic."""
+    from tocsin.model.batch import _plainly_valid
+
+    assert _plainly_valid(good(amp=None)) is not None
+    assert _plainly_valid(good()) is None
+    assert _plainly_valid(good(amp=None, t=[T0 + 5, float(T0 + 6)])) is None
+    for bad in ({"seq": True}, {"live": [T0, True]}, {"t": [True]}, {"v": True}, {"x": 1}):
+        assert _plainly_valid(good(amp=None, **bad)) is None, bad

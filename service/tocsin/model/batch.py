@@ -10,7 +10,7 @@ times are then checked vectorised with numpy.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Literal, NamedTuple
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
@@ -109,6 +109,57 @@ def _first_descent(ts: list[int]) -> int | None:
     return int(down[0]) if down.size else None
 
 
+_FIELDS = frozenset(_BatchV1.model_fields)
+
+
+class _Fields(NamedTuple):
+    """The fields of a batch that passed the schema (either way)."""
+
+    site: str
+    seq: int
+    live: list[int]
+    t: list[int]
+    amp: list[float] | None
+
+
+def _plainly_valid(obj: dict[str, Any]) -> _Fields | None:
+    """The batch, without pydantic's validator, when it plainly satisfies
+    :class:`_BatchV1`: known fields only, ``v`` the integer 1, ``site`` a string,
+    ``seq``, both ``live`` ends and every hit time integers (not booleans) in
+    [0, 2^63 - 1], no amplitudes. Otherwise None, and :func:`_validated` decides and
+    names the error. (The common 1 s batch of ~10 hits spent most of its decode
+    time in the generic validator; this check accepts nothing it would refuse.)"""
+    if not obj.keys() <= _FIELDS or obj.get("amp") is not None:
+        return None
+    v, site, seq, live, t = (obj.get(k) for k in ("v", "site", "seq", "live", "t"))
+    if type(v) is not int or v != 1 or type(site) is not str:
+        return None
+    if type(seq) is not int or not 0 <= seq <= I64_MAX:
+        return None
+    if type(live) is not list or len(live) != 2 or type(t) is not list:
+        return None
+    for x in live:
+        if type(x) is not int or not 0 <= x <= I64_MAX:
+            return None
+    for x in t:
+        if type(x) is not int:
+            return None
+    if t and (min(t) < 0 or max(t) > I64_MAX):
+        return None
+    return _Fields(site, seq, live, t, None)
+
+
+def _validated(obj: dict[str, Any]) -> _Fields:
+    """pydantic's strict validation; an error names the field (``bad_schema``)."""
+    try:
+        m = _BatchV1.model_validate(obj)
+        return _Fields(m.site, m.seq, m.live, m.t, m.amp)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        loc = ".".join(str(x) for x in err["loc"]) or "<root>"
+        raise BatchRejected("bad_schema", loc, err["msg"]) from None
+
+
 def parse_batch(
     obj: Any,
     registry: SiteRegistry,
@@ -134,12 +185,9 @@ def parse_batch(
         raise BatchRejected(
             "too_large", "t", f"{len(t_raw)} hits exceed the limit of {MAX_HITS_PER_BATCH}"
         )
-    try:
-        m = _BatchV1.model_validate(obj)
-    except ValidationError as exc:
-        err = exc.errors()[0]
-        loc = ".".join(str(x) for x in err["loc"]) or "<root>"
-        raise BatchRejected("bad_schema", loc, err["msg"]) from None
+    m = _plainly_valid(obj)
+    if m is None:
+        m = _validated(obj)
     if m.site not in registry:
         raise BatchRejected(
             "unknown_site",
