@@ -51,7 +51,7 @@ from numpy.typing import NDArray
 
 from tocsin.engine.coincidence import SeedResult, SlotGeometry, concat_results
 from tocsin.engine.direction import TripleSolution, seed_baselines, solve_triples
-from tocsin.engine.front_bound import BOUND_MARGIN, front_lower_bounds
+from tocsin.engine.front_bound import BOUND_MARGIN, FrontGeometry, front_lower_bounds
 from tocsin.engine.front_bound import warm_up as warm_front_bound
 from tocsin.engine.geometry import MIN_TRIANGLE_ANGLE_DEG, ellipsoid_up, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
@@ -187,9 +187,17 @@ class FrontSearch:
             np.concatenate([self.lo[:, :, None], np.moveaxis(self.hi, 0, -1)], axis=2),
             dtype=np.float64,
         )
-        self._ecef_c = np.ascontiguousarray(self.ecef, dtype=np.float64)
-        self._up_c = np.ascontiguousarray(self.up, dtype=np.float64)
-        self._sigma_c = np.ascontiguousarray(self.sigma, dtype=np.float64)
+        self._geo = FrontGeometry(
+            np.ascontiguousarray(self.ecef, dtype=np.float64),
+            np.ascontiguousarray(self.up, dtype=np.float64),
+            np.ascontiguousarray(self.sigma, dtype=np.float64),
+            self._edges,
+            self._scales_f64,
+            float(self._tol_base),
+            float(self.cfg.clock_sigmas),
+            MIN_TRIANGLE_ANGLE_DEG,
+            HORIZON_SLACK,
+        )
         warm_front_bound()
 
     def seed_weight(self, rates_per_ns: F64Array) -> F64Array:
@@ -372,15 +380,7 @@ class FrontSearch:
             self.ahead_ns[wide],
             K_MAX,
             wide,
-            self._ecef_c,
-            self._up_c,
-            self._sigma_c,
-            self._edges,
-            self._scales_f64,
-            float(self._tol_base),
-            float(self.cfg.clock_sigmas),
-            MIN_TRIANGLE_ANGLE_DEG,
-            HORIZON_SLACK,
+            self._geo,
         )
         ok: BoolArray = np.asarray((bounds <= p_max * (1.0 + BOUND_MARGIN)).any(axis=1))
         return ok

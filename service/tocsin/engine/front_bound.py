@@ -29,6 +29,7 @@ unscreened one on dense data with many seeds near the threshold.
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numpy as np
 
@@ -39,6 +40,30 @@ BOUND_MARGIN = 1.0e-6
 """Relative margin on ``p_max`` before a seed is screened out (rounding only)."""
 
 _NO_BOUND = math.inf
+
+
+class FrontGeometry(NamedTuple):
+    """What the kernels read about the network, passed as one tuple."""
+
+    ecef: F64Array
+    """(N, 3) site positions (m, ECEF)."""
+    up: F64Array
+    """(N, 3) local up unit vectors."""
+    sigma: F64Array
+    """(N,) clock 1-sigma (ns)."""
+    edges: F64Array
+    """(N, N, 1 + F) slot edges (ns) of each (seed site, site) pair side by side,
+    ``lo`` then ``hi`` at every front scale (one cache line per neighbour hit)."""
+    scales_ns: F64Array
+    """(F,) front scales (ns)."""
+    tol_base_ns: float
+    """Clock part of the triple tolerance (ns); a scale's own width is added."""
+    k_sig: float
+    """Clock sigmas of a consistency window."""
+    min_angle_deg: float
+    """Smallest interior angle (deg) of a usable triangle."""
+    horizon_slack: float
+    """How far below a site's horizon (sine) a front may come from."""
 
 
 @kernel
@@ -84,20 +109,13 @@ def _seed_bounds(
     slot_w: F64Array,
     slot_in: BoolArray,
     wide: int,
-    ecef: F64Array,
-    up: F64Array,
-    sigma: F64Array,
-    edges: F64Array,
-    scales_ns: F64Array,
-    tol_base_ns: float,
-    k_sig: float,
-    min_angle_deg: float,
-    horizon_slack: float,
+    geo: FrontGeometry,
 ) -> None:
     """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
     ``buf`` (14, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
     ``slot_in`` (F, K) are scratch space (K >= kk)."""
+    ecef, up, sigma, edges, scales_ns, tol_base_ns, k_sig, min_angle_deg, horizon_slack = geo
     c = C_M_PER_NS
     tol_wide = tol_base_ns + scales_ns[wide]
     bl = buf[0:3].T  # (k_max, 3) view
@@ -254,15 +272,7 @@ def front_lower_bounds(
     ahead_ns: int,
     k_max: int,
     wide: int,
-    ecef: F64Array,
-    up: F64Array,
-    sigma: F64Array,
-    edges: F64Array,
-    scales_ns: F64Array,
-    tol_base_ns: float,
-    k_sig: float,
-    min_angle_deg: float,
-    horizon_slack: float,
+    geo: FrontGeometry,
 ) -> F64Array:
     """Lower bound ``B`` (module doc) per seed and front scale; ``inf`` where the seed
     has fewer than three other sites in its slots, no row reaches m >= 4, or the
@@ -272,14 +282,12 @@ def front_lower_bounds(
     ``t_seed`` (sorted) and ``seed_site`` the seeds. A seed's neighbour hits are, as
     in :meth:`FrontSearch._evaluate_wide`, the hits within ``[t_seed - back_ns,
     t_seed + ahead_ns]`` at other sites inside their slot at scale ``wide``
-    (``lo <= delay <= hi[wide]``), the earliest ``k_max`` of them. ``ecef``/``up``
-    (N, 3) site positions (m) and local up vectors, ``sigma`` (N,) clock 1-sigma
-    (ns), ``edges`` (N, N, 1 + F) the slot edges (ns) of each (seed site, site)
-    pair side by side, ``lo`` then ``hi`` at every front scale (one cache line per
-    neighbour hit), ``scales_ns`` (F,) front scales; triples are solved with the
-    tolerance of scale ``wide``, as the exact search does.
+    (``lo <= delay <= hi[wide]``), the earliest ``k_max`` of them. ``geo``: the
+    network (:class:`FrontGeometry`); triples are solved with the tolerance of scale
+    ``wide``, as the exact search does.
     """
     n_seed = t_seed.size
+    ecef, edges, scales_ns = geo.ecef, geo.edges, geo.scales_ns
     out = np.full((n_seed, scales_ns.size), _NO_BOUND)
     nbs = np.empty(k_max, dtype=np.int64)
     nbd = np.empty(k_max)
@@ -325,15 +333,7 @@ def front_lower_bounds(
             slot_w,
             slot_in,
             wide,
-            ecef,
-            up,
-            sigma,
-            edges,
-            scales_ns,
-            tol_base_ns,
-            k_sig,
-            min_angle_deg,
-            horizon_slack,
+            geo,
         )
     return out
 
@@ -351,13 +351,15 @@ def warm_up() -> None:
         0,
         1,
         0,
-        np.zeros((1, 3)),
-        np.zeros((1, 3)),
-        np.zeros(1),
-        np.zeros((1, 1, 2)),
-        np.zeros(1),
-        0.0,
-        0.0,
-        0.0,
-        0.0,
+        FrontGeometry(
+            np.zeros((1, 3)),
+            np.zeros((1, 3)),
+            np.zeros(1),
+            np.zeros((1, 1, 2)),
+            np.zeros(1),
+            0.0,
+            0.0,
+            0.0,
+            0.0,
+        ),
     )
