@@ -22,6 +22,13 @@ Conservative by construction, so the candidates do not change:
   between this loop and numpy's vector arithmetic (~1e-16 relative) cannot drop it;
 * kept seeds go through the unchanged numpy search, which alone decides.
 
+The discrete choices inside (a triple usable, a hit consistent with a front) are
+the same comparisons as numpy's, on values that agree to ~1e-16 relative; the
+collinearity test errs towards keeping. Only a hit lying on a tolerance edge to
+the last bit could be judged differently: not ruled out, but not seen (the
+candidates of a 150 s, 1000-site bench replay and of the shipped recording are
+byte-identical with and without the screen).
+
 ``tests/test_front_bound.py`` checks that the screened search returns exactly the
 unscreened one on dense data with many seeds near the threshold.
 """

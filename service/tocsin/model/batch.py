@@ -3,8 +3,11 @@
 A batch that breaks any rule is rejected whole with :class:`BatchRejected`,
 whose ``reason`` is one of :data:`REJECT_REASONS` and whose ``field`` names the
 offending field. Structure and types are checked by pydantic (strict: no
-coercion of strings or booleans to numbers); ordering and bounds of the hit
-times are then checked vectorised with numpy.
+coercion of strings or booleans to numbers), except for a batch that plainly
+passes (:func:`_plainly_valid`: integers only, no amplitudes), which a few plain
+type tests take without the generic validator; ordering and bounds of the hit
+times are then checked, in plain Python for short batches and with numpy for
+long ones.
 """
 
 from __future__ import annotations
