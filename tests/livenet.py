@@ -18,6 +18,7 @@ import aiomqtt
 import orjson
 
 from tests.mosquitto import Mosquitto, free_port
+from tocsin.io.journal import read_from
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "replay_data" / "demo.jsonl.gz"
@@ -115,15 +116,10 @@ def running_service(stack: contextlib.ExitStack, config: Path) -> ServiceProcess
 
 
 def journal_lines(data: Path) -> list[dict[str, object]]:
-    """The journal's complete lines. The service may be appending while this reads
-    (it writes through a buffer and fsyncs in groups), so a last line without its
-    newline is not yet written and is left out, as the service's own reader does."""
-    out = []
-    for seg in sorted((data / "journal").glob("journal-*.jsonl")):
-        for line in seg.read_bytes().splitlines(keepends=True):
-            if line.endswith(b"\n") and line.strip():
-                out.append(orjson.loads(line))
-    return out
+    """The journal's complete lines, read by the service's own reader: the service
+    may be appending while this reads, and a last line without its newline (not
+    yet written out) is left out."""
+    return [orjson.loads(line) for line in read_from(data / "journal", None)]
 
 
 def wait_journal(data: Path, n: int, timeout_s: float = 120.0) -> None:

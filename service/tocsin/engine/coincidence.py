@@ -83,11 +83,10 @@ class ScaleTables:
     """(N, N + 1): P(K > k) for seed site s."""
     point: F64Array
     """(N, N + 1): P(K = k) for seed site s."""
-    hi_counted: I64Array
-    """(N * N,) flat: the slot's upper edge (ns after the seed) where site j counts
-    (``q > 0``), else a value below every lower edge (so nothing falls in it)."""
     slots: SlotTables | None
-    """The edges laid out for the compiled count (None: no seed site is active)."""
+    """Slot edges per (seed site, site) pair, the upper one folding in ``q > 0`` (a
+    pair that does not count gets one below every lower edge); None: no seed site
+    is active at this scale."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -295,14 +294,11 @@ class CoincidenceTrigger:
             active = ok & fresh & enough & quiet & sparse & (lam > 0)
             prev_e = np.where(active, e, prev_e)
             tail_gt, point = _null_tables(q, active, e)
+            slots = None  # nothing is evaluated at this scale
             if active.any():
                 hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
-                hi_flat = hi_counted.reshape(-1)
-                slots: SlotTables | None = slot_tables(self.geom.lo_flat_i, hi_flat, n)
-            else:  # nothing is evaluated at this scale
-                hi_flat = np.broadcast_to(np.int64(NO_PREVIOUS_NS), (n * n,))
-                slots = None
-            scales.append(ScaleTables(q, active, tail_gt, point, hi_flat, slots))
+                slots = slot_tables(self.geom.lo_flat_i, hi_counted.reshape(-1), n)
+            scales.append(ScaleTables(q, active, tail_gt, point, slots))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)
         return Tables(lam, tuple(scales), weight, float(np.dot(lam, weight)) * 1e9)
@@ -334,21 +330,20 @@ class CoincidenceTrigger:
         empty = np.zeros(0, dtype=np.int64)
         if seed_pos.size == 0:
             return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
+        slots = st.slots
+        if slots is None:  # seeds are only evaluated where some seed site is active
+            raise RuntimeError(f"scale {k} has active seeds but no slot tables")
         t_seed = t[seed_pos]
-        # Restrict the stream to sites that can count at this scale.
-        counts_as_nb = st.q.sum(axis=0) > 0
         # Only the stretch these seeds' slots can reach: a previous hit before it is
         # before every slot start, so "no previous hit" decides the same.
         i_lo = int(np.searchsorted(t, int(t_seed[0]) - self.geom.back_ns, side="left"))
         i_hi = int(np.searchsorted(t, int(t_seed[-1]) + self.geom.ahead_ns[k], side="right"))
-        sub = i_lo + np.flatnonzero(counts_as_nb[site[i_lo:i_hi]])
+        # Restrict the stream to sites that can count at this scale.
+        sub = i_lo + np.flatnonzero(slots.as_neighbour[site[i_lo:i_hi]])
         t_sub, s_sub = t[sub], site[sub]
         prev_sub = previous_same_site(t_sub, s_sub) if prev is None else prev[sub]
         n_seed = seed_pos.size
         ss = site[seed_pos]
-        slots = st.slots
-        if slots is None:  # seeds are only evaluated where some seed site is active
-            raise RuntimeError(f"scale {k} has active seeds but no slot tables")
         # the number of other sites in each seed's slots (compiled, no pair arrays)
         kk = slot_counts(
             t_sub,
@@ -377,9 +372,10 @@ class CoincidenceTrigger:
         d = t_sub[pr.nb] - tp_seed  # int64 ns
         pair = np.repeat(ss[idx_m].astype(np.int64) * self.n_sites, pr.counts)
         pair += s_nb  # flat (seed site, site) index
-        lo = self.geom.lo_flat_i.take(pair)
-        # In the slot of a counted site (hi_counted folds in q > 0) ...
-        keep = d <= st.hi_counted.take(pair)
+        edges = slots.edges[pair]
+        lo = edges[:, 0]
+        # In the slot of a counted site (the upper edge folds in q > 0) ...
+        keep = d <= edges[:, 1]
         keep &= d >= lo
         # ... and only the earliest hit of a site in the slot counts: a hit whose
         # site's previous hit is already inside the slot is not the earliest.

@@ -181,18 +181,16 @@ class FrontSearch:
         self.screen = True
         """Skip seeds whose compiled lower bound (:mod:`tocsin.engine.front_bound`)
         shows they cannot pass; the results are the same either way (tested)."""
-        self._scales_f64 = self.scales_ns.astype(np.float64)
-        # (N, N, 1 + F): lo then hi at every front scale, per (seed site, site) pair
-        self._edges = np.ascontiguousarray(
-            np.concatenate([self.lo[:, :, None], np.moveaxis(self.hi, 0, -1)], axis=2),
-            dtype=np.float64,
-        )
         self._geo = FrontGeometry(
             np.ascontiguousarray(self.ecef, dtype=np.float64),
             np.ascontiguousarray(self.up, dtype=np.float64),
             np.ascontiguousarray(self.sigma, dtype=np.float64),
-            self._edges,
-            self._scales_f64,
+            # (N, N, 1 + F): lo then hi at every front scale, per (seed site, site) pair
+            np.ascontiguousarray(
+                np.concatenate([self.lo[:, :, None], np.moveaxis(self.hi, 0, -1)], axis=2),
+                dtype=np.float64,
+            ),
+            self.scales_ns.astype(np.float64),
             float(self._tol_base),
             float(self.cfg.clock_sigmas),
             MIN_TRIANGLE_ANGLE_DEG,

@@ -28,6 +28,8 @@ class SlotTables:
     """(N * N, 2): lower and upper edge (ns) per (seed site, site) pair, side by side."""
     counted: BoolArray
     """(N * N,): the pair's slot can hold a hit (upper edge >= lower edge)."""
+    as_neighbour: BoolArray
+    """(N,): the site counts for some seed site (its hits need to be searched)."""
     rows: I64Array
     """(N, 3) per seed site, over its counted pairs: the highest lower edge, the lowest
     upper edge and the lowest lower edge (ns); a hit between the first two whose
@@ -54,7 +56,9 @@ def slot_tables(lo_flat: I64Array, hi_flat: I64Array, n_sites: int) -> SlotTable
     )
     none = ~c2.any(axis=1)
     rows[none] = (big, small, small)
-    return SlotTables(edges, np.ascontiguousarray(counted), np.ascontiguousarray(rows))
+    return SlotTables(
+        edges, np.ascontiguousarray(counted), np.asarray(c2.any(axis=0)), np.ascontiguousarray(rows)
+    )
 
 
 @kernel
