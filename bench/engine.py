@@ -547,6 +547,7 @@ def main(argv: list[str] | None = None) -> int:
                 n,
                 one.geom.back_ns,
                 one.geom.ahead_ns[0],
+                np.zeros(n, dtype=np.int64),  # count every seed
             )
         )
 

@@ -36,7 +36,7 @@ a = {{k: np.asarray(v, dtype=np.int64) for k, v in d.items() if k != "n"}}
 tab = slot_tables(a["lo"], a["hi"], d["n"])
 kk = slot_counts(
     a["t"], a["s"], a["prev"], a["ts"], a["ss"], tab.edges, tab.counted, tab.rows, d["n"],
-    500, 40000,
+    500, 40000, np.zeros(d["n"], dtype=np.int64),
 )
 print(json.dumps({{"plain": plain, "kk": kk.tolist()}}))
 """
@@ -80,7 +80,18 @@ def test_kernels_compile_in_memory_without_a_cache(tmp_path: Path) -> None:
     a = {k: np.asarray(v, dtype=np.int64) for k, v in data.items() if k != "n"}
     tab = slot_tables(a["lo"], a["hi"], n)
     here = slot_counts(
-        a["t"], a["s"], a["prev"], a["ts"], a["ss"], tab.edges, tab.counted, tab.rows, n, 500, 40000
+        a["t"],
+        a["s"],
+        a["prev"],
+        a["ts"],
+        a["ss"],
+        tab.edges,
+        tab.counted,
+        tab.rows,
+        n,
+        500,
+        40000,
+        np.zeros(n, dtype=np.int64),
     )
     assert got["kk"] == here.tolist()
     assert max(got["kk"]) >= 2

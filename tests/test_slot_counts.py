@@ -71,7 +71,58 @@ def test_slot_counts_equal_a_direct_count(seed: int, edges: str) -> None:
         n_sites,
         int(-lo.min()),
         int(hi.max()),
+        np.zeros(n_sites, dtype=np.int64),
     )
     want = direct_counts(t, site, t_seed, seed_site, lo, hi)
     assert got.tolist() == want
     assert max(want) >= 4 and min(want) == 0  # the data exercise both ends
+
+    # With a count of interest per seed site, a seed is either counted exactly or
+    # marked -1, and -1 only where its count really is below what was asked.
+    need = rng.integers(0, 25, n_sites).astype(np.int64)
+    need[0] = 0
+    some = slot_counts(
+        t,
+        site,
+        prev,
+        t_seed,
+        seed_site,
+        tab.edges,
+        tab.counted,
+        tab.rows,
+        n_sites,
+        int(-lo.min()),
+        int(hi.max()),
+        need,
+    )
+    skipped = some == -1
+    assert (some[~skipped] == np.asarray(want)[~skipped]).all()
+    assert (np.asarray(want)[skipped] < need[seed_site[skipped]]).all()
+    assert skipped.any() and (~skipped).any()
+
+
+def test_a_seed_whose_every_span_hit_counts_is_not_skipped() -> None:
+    """The skip's bound is tight: when every hit of a seed's search span is in its
+    slot at a distinct site, the seed is counted for ``need`` up to that number of
+    hits and skipped only above it."""
+    n_sites = 6
+    t = np.array([100, 200, 300, 400, 500], dtype=np.int64)
+    site = np.arange(1, 6, dtype=np.int64)
+    prev = np.full(t.size, NO_PREVIOUS_NS, dtype=np.int64)
+    lo = np.zeros((n_sites, n_sites), dtype=np.int64)
+    hi = np.full((n_sites, n_sites), 1000, dtype=np.int64)
+    np.fill_diagonal(hi, NO_PREVIOUS_NS)
+    tab = slot_tables(lo.ravel(), hi.ravel(), n_sites)
+    seed_t = np.array([50], dtype=np.int64)
+    seed_s = np.array([0], dtype=np.int64)
+
+    def count(k: int) -> int:
+        need = np.full(n_sites, k, dtype=np.int64)
+        out = slot_counts(
+            t, site, prev, seed_t, seed_s, tab.edges, tab.counted, tab.rows, n_sites, 0, 1000, need
+        )
+        return int(out[0])
+
+    assert count(0) == 5
+    assert count(5) == 5
+    assert count(6) == -1

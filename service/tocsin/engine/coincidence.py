@@ -80,13 +80,31 @@ class ScaleTables:
     active: BoolArray
     """(N,) seed sites for which this scale is evaluated."""
     tail_gt: F64Array
-    """(N, N + 1): P(K > k) for seed site s."""
+    """(N, C): P(K > k) for seed site s, k = 0 .. C - 1; counts above C - 1 read
+    column C - 1 (:meth:`column`), which then holds a bound (see ``_null_tables``)."""
     point: F64Array
-    """(N, N + 1): P(K = k) for seed site s."""
+    """(N, C): P(K = k) for seed site s, as ``tail_gt`` (0 in the bounding column)."""
     slots: SlotTables | None
     """Slot edges per (seed site, site) pair, the upper one folding in ``q > 0`` (a
     pair that does not count gets one below every lower edge); None: no seed site
     is active at this scale."""
+
+    def column(self, k: I64Array) -> I64Array:
+        """Column of :attr:`tail_gt` and :attr:`point` that holds count(s) ``k >= 0``."""
+        out: I64Array = np.minimum(k, self.tail_gt.shape[1] - 1)
+        return out
+
+    def need(self, p_max: float, min_multiplicity: int) -> I64Array:
+        """(N,) per seed site, the smallest count of other sites ``k`` that passes
+        ``P(K > k) <= p_max`` and ``k + 1 >= min_multiplicity`` (a huge number
+        where none does): a seed with fewer cannot pass."""
+        cols = self.tail_gt.shape[1]
+        m0 = max(min_multiplicity - 1, 0)
+        start = min(m0, cols - 1)
+        ok = self.tail_gt[:, start:] <= p_max
+        first = np.where(ok.any(axis=1), ok.argmax(axis=1) + start, np.iinfo(np.int64).max)
+        out: I64Array = np.maximum(first, m0).astype(np.int64)
+        return out
 
 
 @dataclass(frozen=True, slots=True)
@@ -191,31 +209,32 @@ chance is below ~1e-17 and the p-value is reported as that tail (a bound)."""
 
 def _null_tables(q: F64Array, active: BoolArray, e: F64Array) -> tuple[F64Array, F64Array]:
     """``P(K > k)`` and ``P(K = k)`` per seed site (rows), exact for the counts that
-    matter: computed for active rows only, truncated at mean + TAIL_SD sd + 12."""
+    matter: computed for active rows only, truncated at ``k_top`` = mean + TAIL_SD sd
+    + 12. Shape (N, k_top + 1): the last column holds ``P(K >= k_top)`` as the tail
+    and 0 as the point probability of every count from ``k_top`` on (exact tables,
+    (N, N + 1), when ``k_top`` reaches N)."""
     n = q.shape[0]
     rows = np.flatnonzero(active)
-    mu = float(e[rows].max()) if rows.size else 0.0
-    k_top = min(n, int(np.ceil(mu + TAIL_SD * np.sqrt(mu) + 12)))
     if rows.size == 0:  # nothing is evaluated at this scale: read-only placeholders
-        return np.broadcast_to(1.0, (n, n + 1)), np.broadcast_to(0.0, (n, n + 1))
-    tail_gt = np.ones((n, n + 1))
-    point = np.zeros((n, n + 1))
-    if rows.size and k_top >= n:  # small network: the full, exact distribution
+        return np.broadcast_to(1.0, (n, 1)), np.broadcast_to(0.0, (n, 1))
+    mu = float(e[rows].max())
+    k_top = min(n, int(np.ceil(mu + TAIL_SD * np.sqrt(mu) + 12)))
+    tail_gt = np.ones((n, k_top + 1))
+    point = np.zeros((n, k_top + 1))
+    if k_top >= n:  # small network: the full, exact distribution
         pmf = poisson_binomial_pmf_top(q[rows], n)
         ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]
         tail_gt[rows] = np.clip(np.concatenate([ge[:, 1:], np.zeros((rows.size, 1))], 1), 0, 1)
         point[rows] = pmf
-    elif rows.size:
+    else:
         pmf = poisson_binomial_pmf_top(q[rows], k_top)  # (R, k_top + 1), last = P(>= k_top)
         # exact below k_top; at and above it, P(K > k) is bounded by P(K >= k_top)
         ge = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]  # P(K >= k), k = 0 .. k_top
-        gt = np.zeros((rows.size, n + 1))
+        gt = np.empty((rows.size, k_top + 1))
         gt[:, :k_top] = ge[:, 1:]
-        gt[:, k_top:] = pmf[:, k_top : k_top + 1]
-        pt = np.zeros((rows.size, n + 1))
-        pt[:, :k_top] = pmf[:, :k_top]
+        gt[:, k_top] = pmf[:, k_top]
         tail_gt[rows] = np.clip(gt, 0.0, 1.0)
-        point[rows] = pt
+        point[rows, :k_top] = pmf[:, :k_top]
     return tail_gt, point
 
 
@@ -344,7 +363,8 @@ class CoincidenceTrigger:
         prev_sub = previous_same_site(t_sub, s_sub) if prev is None else prev[sub]
         n_seed = seed_pos.size
         ss = site[seed_pos]
-        # the number of other sites in each seed's slots (compiled, no pair arrays)
+        # the number of other sites in each seed's slots (compiled, no pair arrays);
+        # -1 where the seed's search span holds too few hits to pass
         kk = slot_counts(
             t_sub,
             s_sub.astype(np.int64),
@@ -357,10 +377,12 @@ class CoincidenceTrigger:
             self.n_sites,
             self.geom.back_ns,
             self.geom.ahead_ns[k],
+            st.need(p_max, self.cfg.min_multiplicity),
         )
         # p = P(K > k) + P(K = k) * (Fisher term in [0, 1]) >= P(K > k): only seeds
         # whose bound can pass need their offsets (most cannot).
-        maybe = (st.tail_gt[ss, kk] <= p_max) & (kk + 1 >= self.cfg.min_multiplicity)
+        maybe = (kk >= 0) & (st.tail_gt[ss, st.column(np.maximum(kk, 0))] <= p_max)
+        maybe &= kk + 1 >= self.cfg.min_multiplicity
         idx_m = np.flatnonzero(maybe)
         if idx_m.size == 0:
             return SeedResult(k, empty, np.zeros(0), empty, empty, empty)
@@ -404,7 +426,8 @@ class CoincidenceTrigger:
         log_u = np.log(np.clip(u, 1e-300, 1.0))
         x = -np.bincount(g_seed, weights=log_u, minlength=n_seed)[idx_m]
         km, sm = kk[idx_m], ss[idx_m]
-        p = st.tail_gt[sm, km] + st.point[sm, km] * fisher_combined_sf(-x, km)
+        col = st.column(km)
+        p = st.tail_gt[sm, col] + st.point[sm, col] * fisher_combined_sf(-x, km)
         p = np.clip(p, 0.0, 1.0)
         idx = idx_m[p <= p_max]
         p = p[p <= p_max]

@@ -8,6 +8,12 @@ offsets and the Fisher term that :meth:`CoincidenceTrigger.evaluate` computes in
 numpy. Building every (seed, neighbour) pair in numpy just to count them was the
 largest cost of that method; this loop visits each neighbour once, in integers,
 and gives exactly the numpy count (``tests/test_slot_counts.py``).
+
+Most seeds need no count at all: a seed site's tables say how many sites a seed
+must gather to pass (``need``), and the hits anywhere in the seed's search span
+bound its count from above. Where that bound is short of ``need`` the seed is
+marked -1 after two pointer steps, without reading a pair table (whose random
+reads, one cache miss per neighbour, were the loop's cost).
 """
 
 from __future__ import annotations
@@ -74,8 +80,10 @@ def slot_counts(
     n_sites: int,
     back_ns: int,
     ahead_ns: int,
+    need: I64Array,
 ) -> I64Array:
-    """Distinct sites counted in each seed's slots (the seed's own site excluded).
+    """Distinct sites counted in each seed's slots (the seed's own site excluded),
+    or -1 for a seed whose count is surely below ``need[seed site]``.
 
     ``t`` (sorted, GPS ns) and ``site`` are the stream of hits that may count,
     ``prev`` each one's previous hit time of the same site (GPS ns; anything far
@@ -84,23 +92,33 @@ def slot_counts(
     counts when its pair is counted, ``lo <= t - t_seed <= hi`` and its site's
     previous hit is before the slot start (so each site counts once, by its
     earliest hit in the slot). Neighbours are searched within ``[t_seed - back_ns,
-    t_seed + ahead_ns]``, which must hold every slot.
+    t_seed + ahead_ns]``, which must hold every slot. ``need`` (N,): per seed site,
+    the smallest count of interest (0: count every seed); a seed with fewer than
+    that many hits of ``t`` in its search span cannot reach it and gets -1.
     """
     n_seed = t_seed.size
     out = np.zeros(n_seed, dtype=np.int64)
     left = 0
+    right = 0
     n = t.size
     for i in range(n_seed):
         ts = t_seed[i]
         s = seed_site[i]
-        row = s * n_sites
-        lo_max, hi_min, lo_min = rows[s, 0], rows[s, 1], rows[s, 2]
         while left < n and t[left] < ts - back_ns:
             left += 1
-        j = left
         end = ts + ahead_ns
+        if right < left:
+            right = left
+        while right < n and t[right] <= end:
+            right += 1
+        if right - left < need[s]:  # every hit of the span counting would not do
+            out[i] = -1
+            continue
+        row = s * n_sites
+        lo_max, hi_min, lo_min = rows[s, 0], rows[s, 1], rows[s, 2]
+        j = left
         count = 0
-        while j < n and t[j] <= end:
+        while j < right:
             pair = row + site[j]
             if counted[pair]:
                 d = t[j] - ts
@@ -122,4 +140,4 @@ def warm_up() -> None:
     process costs ~0.7 s even from numba's cache."""
     one = np.zeros(1, dtype=np.int64)
     tab = slot_tables(one, one, 1)
-    slot_counts(one, one, one, one, one, tab.edges, tab.counted, tab.rows, 1, 0, 0)
+    slot_counts(one, one, one, one, one, tab.edges, tab.counted, tab.rows, 1, 0, 0, one)
