@@ -75,8 +75,6 @@ from tocsin.types import BoolArray, F64Array, I32Array, I64Array
 class ScaleTables:
     """Null-hypothesis tables for one scale, valid while rates and live fractions hold."""
 
-    q: F64Array
-    """(N, N) occupancy probability of site j's slot for a seed at site s (0 = not counted)."""
     active: BoolArray
     """(N,) seed sites for which this scale is evaluated."""
     tail_gt: F64Array
@@ -207,6 +205,13 @@ TAIL_SD = 12.0
 chance is below ~1e-17 and the p-value is reported as that tail (a bound)."""
 
 
+def _inactive_scale(n: int) -> ScaleTables:
+    """Tables of a scale at which no seed site is evaluated (read-only placeholders)."""
+    return ScaleTables(
+        np.zeros(n, dtype=bool), np.broadcast_to(1.0, (n, 1)), np.broadcast_to(0.0, (n, 1)), None
+    )
+
+
 def _null_tables(q: F64Array, active: BoolArray, e: F64Array) -> tuple[F64Array, F64Array]:
     """``P(K > k)`` and ``P(K = k)`` per seed site (rows), exact for the counts that
     matter: computed for active rows only, truncated at ``k_top`` = mean + TAIL_SD sd
@@ -297,6 +302,13 @@ class CoincidenceTrigger:
         scales: list[ScaleTables] = []
         prev_e = np.full(n, np.nan)
         for k in range(self.geom.scales_ns.size):
+            # A site too busy to count as a neighbour at this scale does not seed
+            # either: its hits would re-find every cluster of quieter sites.
+            quiet = -np.expm1(-lam * self._mean_w[k]) <= self.cfg.occupancy_cap
+            may = ok & quiet & (lam > 0)
+            if not may.any():  # no seed site can be active: no N x N work at all
+                scales.append(_inactive_scale(n))
+                continue
             occ = -np.expm1(-lam[None, :] * self.geom.width[k])
             allowed = not_self & (occ <= self.cfg.occupancy_cap) & ok[None, :] & ok[:, None]
             q = np.where(allowed, occ, 0.0)
@@ -304,20 +316,17 @@ class CoincidenceTrigger:
             ratio = self.cfg.redundancy_ratio
             fresh = np.isnan(prev_e) | (e >= ratio * prev_e) | (e * ratio <= prev_e)
             enough = allowed.sum(axis=1) >= self.cfg.min_multiplicity - 1
-            # A site too busy to count as a neighbour at this scale does not seed
-            # either: its hits would re-find every cluster of quieter sites.
-            quiet = -np.expm1(-lam * self._mean_w[k]) <= self.cfg.occupancy_cap
             # A multiplicity test where chance alone fills many slots has no power
             # (that is the excess trigger's ground): not evaluated, not a trial.
             sparse = e <= self.cfg.max_expected_neighbours
-            active = ok & fresh & enough & quiet & sparse & (lam > 0)
+            active = may & fresh & enough & sparse
             prev_e = np.where(active, e, prev_e)
             tail_gt, point = _null_tables(q, active, e)
             slots = None  # nothing is evaluated at this scale
             if active.any():
                 hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
                 slots = slot_tables(self.geom.lo_flat_i, hi_counted.reshape(-1), n)
-            scales.append(ScaleTables(q, active, tail_gt, point, slots))
+            scales.append(ScaleTables(active, tail_gt, point, slots))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)
         return Tables(lam, tuple(scales), weight, float(np.dot(lam, weight)) * 1e9)

@@ -101,6 +101,20 @@ def _row_slices(n_nb: I64Array) -> list[slice]:
     return [slice(a, b) for a, b in itertools.pairwise(edges)]
 
 
+def _pair_table(lo: F64Array, base_hi: F64Array, pair_el: BoolArray) -> I32Array:
+    """(N, N, 2) int32 ``lo`` and ``hi - W`` (integer-valued ns) per pair of eligible
+    sites, 0 elsewhere (:class:`FrontGeometry`). Eligible sites have clocks good to
+    ``front_max_clock_ns`` and no two points on Earth are 43 ms of light apart, so
+    the values are far inside int32; checked, as the kernels rely on it."""
+    both = np.stack([np.where(pair_el, lo, 0.0), np.where(pair_el, base_hi, 0.0)], axis=2)
+    limit = float(np.iinfo(np.int32).max)
+    if not (np.all(np.abs(both) <= limit) and np.all(both == np.round(both))):
+        bad = float(np.abs(both).max())
+        raise ValueError(f"front slot edges must be integer ns within int32, got up to {bad!r}")
+    out: I32Array = np.ascontiguousarray(both.astype(np.int32))
+    return out
+
+
 def _predict_rows(
     sol: TripleSolution,
     rm: I64Array,
@@ -185,11 +199,9 @@ class FrontSearch:
             np.ascontiguousarray(self.ecef, dtype=np.float64),
             np.ascontiguousarray(self.up, dtype=np.float64),
             np.ascontiguousarray(self.sigma, dtype=np.float64),
-            # (N, N, 1 + F): lo then hi at every front scale, per (seed site, site) pair
-            np.ascontiguousarray(
-                np.concatenate([self.lo[:, :, None], np.moveaxis(self.hi, 0, -1)], axis=2),
-                dtype=np.float64,
-            ),
+            _pair_table(self.lo, self.hi[0] - self.scales_ns[0], pair_el),
+            np.ascontiguousarray(self.ecef / C_M_PER_NS, dtype=np.float64),
+            np.ascontiguousarray(cfg.clock_sigmas * self.sigma, dtype=np.float64),
             self.scales_ns.astype(np.float64),
             float(self._tol_base),
             float(self.cfg.clock_sigmas),

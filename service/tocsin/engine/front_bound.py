@@ -41,7 +41,7 @@ from typing import NamedTuple
 import numpy as np
 
 from tocsin.engine.jit import kernel
-from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I64Array
+from tocsin.types import C_M_PER_NS, BoolArray, F64Array, I32Array, I64Array
 
 BOUND_MARGIN = 1.0e-6
 """Relative margin on ``p_max`` before a seed is screened out (rounding only)."""
@@ -58,9 +58,16 @@ class FrontGeometry(NamedTuple):
     """(N, 3) local up unit vectors."""
     sigma: F64Array
     """(N,) clock 1-sigma (ns)."""
-    edges: F64Array
-    """(N, N, 1 + F) slot edges (ns) of each (seed site, site) pair side by side,
-    ``lo`` then ``hi`` at every front scale (one cache line per neighbour hit)."""
+    pair_ns: I32Array
+    """(N, N, 2) per (seed site, site) pair of front-eligible sites: the slot's lower
+    edge ``lo`` and its upper edge without the scale, ``hi - W`` (integer ns, so
+    ``hi`` at scale f is ``pair_ns[s, l, 1] + scales_ns[f]`` exactly; 0 for pairs
+    with a site that takes no part). 8 bytes a pair: 1000 sites fit in 8 MB."""
+    pos_ns: F64Array
+    """(N, 3) site positions in light-ns (ECEF / c): a pair's light time without a
+    look-up of the pair table."""
+    k_sigma_ns: F64Array
+    """(N,) ``k_sig`` times each site's clock sigma (ns)."""
     scales_ns: F64Array
     """(F,) front scales (ns)."""
     tol_base_ns: float
@@ -122,7 +129,9 @@ def _seed_bounds(
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
     ``buf`` (14, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
     ``slot_in`` (F, K) are scratch space (K >= kk)."""
-    ecef, up, sigma, edges, scales_ns, tol_base_ns, k_sig, min_angle_deg, horizon_slack = geo
+    ecef, up, sigma, pair_ns, scales_ns = geo.ecef, geo.up, geo.sigma, geo.pair_ns, geo.scales_ns
+    tol_base_ns, k_sig = geo.tol_base_ns, geo.k_sig
+    min_angle_deg, horizon_slack = geo.min_angle_deg, geo.horizon_slack
     c = C_M_PER_NS
     tol_wide = tol_base_ns + scales_ns[wide]
     bl = buf[0:3].T  # (k_max, 3) view
@@ -141,10 +150,12 @@ def _seed_bounds(
             up_l[col, q] = up[site_l, q]
         sig2[col] = sigma[site_l] ** 2
         blen[col] = math.sqrt(bl[col, 0] ** 2 + bl[col, 1] ** 2 + bl[col, 2] ** 2)
+        lo_l = float(pair_ns[s, site_l, 0])
+        base_l = float(pair_ns[s, site_l, 1])
         for f in range(wide + 1):
-            hi_f = edges[s, site_l, 1 + f]
+            hi_f = base_l + scales_ns[f]
             slot_in[f, col] = nbd[col] <= hi_f
-            slot_w[f, col] = hi_f - edges[s, site_l, 0]
+            slot_w[f, col] = hi_f - lo_l
     for a in range(kk):
         sa = nbs[a]
         for b in range(a + 1, kk):
@@ -294,7 +305,9 @@ def front_lower_bounds(
     ``wide``, as the exact search does.
     """
     n_seed = t_seed.size
-    ecef, edges, scales_ns = geo.ecef, geo.edges, geo.scales_ns
+    ecef, pair_ns, scales_ns = geo.ecef, geo.pair_ns, geo.scales_ns
+    pos, k_sigma = geo.pos_ns, geo.k_sigma_ns
+    w_wide = scales_ns[wide]
     out = np.full((n_seed, scales_ns.size), _NO_BOUND)
     nbs = np.empty(k_max, dtype=np.int64)
     nbd = np.empty(k_max)
@@ -315,17 +328,37 @@ def front_lower_bounds(
         end = ts + ahead_ns
         kk = 0
         n_distinct = 0
+        px, py, pz, k_s = pos[s, 0], pos[s, 1], pos[s, 2], k_sigma[s]
         while j < n and t[j] <= end and kk < k_max:
             sl = site[j]
-            d = float(t[j] - ts)
-            if sl != s and d >= edges[s, sl, 0] and d <= edges[s, sl, 1 + wide]:
+            j += 1
+            if sl == s:
+                continue
+            d = float(t[j - 1] - ts)
+            # In the slot at scale ``wide``: lo <= d <= hi, with lo <= 0 and
+            # hi = ceil(light + k sigma_pair) + W, sigma_pair <= sigma_s + sigma_l.
+            # The light time from the positions (good to ~1e-8 ns) decides all but
+            # hits within a few clock sigmas of the upper edge without reading the
+            # pair table (a cache miss per hit); those, and hits before the seed,
+            # read it.
+            if d < 0.0:
+                inside = d >= pair_ns[s, sl, 0]
+            else:
+                dx, dy, dz = px - pos[sl, 0], py - pos[sl, 1], pz - pos[sl, 2]
+                light = math.sqrt(dx * dx + dy * dy + dz * dz)
+                if d <= light - 1.0 + w_wide:
+                    inside = True
+                elif d > light + 2.0 + k_s + k_sigma[sl] + w_wide:
+                    inside = False
+                else:
+                    inside = d <= pair_ns[s, sl, 1] + w_wide
+            if inside:
                 nbs[kk] = sl
                 nbd[kk] = d
                 kk += 1
                 if distinct[sl] != i + 1:
                     distinct[sl] = i + 1
                     n_distinct += 1
-            j += 1
         if n_distinct < 3:
             continue
         _seed_bounds(
@@ -362,7 +395,9 @@ def warm_up() -> None:
             np.zeros((1, 3)),
             np.zeros((1, 3)),
             np.zeros(1),
-            np.zeros((1, 1, 2)),
+            np.zeros((1, 1, 2), dtype=np.int32),
+            np.zeros((1, 3)),
+            np.zeros(1),
             np.zeros(1),
             0.0,
             0.0,

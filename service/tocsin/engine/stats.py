@@ -131,21 +131,25 @@ def _pmf_top_rows(q: F64Array, k_top: int) -> F64Array:
     """The truncated DP of :func:`poisson_binomial_pmf_top`, one row at a time (the
     row's k_top + 1 states stay in cache; compiled). Per element the same operations
     in the same order as a vectorised step ``pmf[top] += pmf[top-1] q``,
-    ``pmf[1:top] = pmf[1:top] p + pmf[:top-1] q``, ``pmf[0] *= p``: each state is
-    updated from the old value of the one below, so going downwards reads it
-    before it changes."""
+    ``pmf[1:top] = pmf[1:top] p + pmf[:top-1] q``, ``pmf[0] *= p``: each step reads
+    the old states from one buffer and writes the new ones to the other, so the
+    inner loop has no dependence between states and the compiler vectorises it."""
     r, n = q.shape
     out = np.zeros((r, k_top + 1))
+    old = np.zeros(k_top + 1)
+    new = np.zeros(k_top + 1)
     for i in range(r):
-        pmf = out[i]
-        pmf[0] = 1.0
+        old[:] = 0.0
+        old[0] = 1.0
         for j in range(n):
             qj = q[i, j]
             pj = 1.0 - qj
-            pmf[k_top] += pmf[k_top - 1] * qj
-            for k in range(k_top - 1, 0, -1):
-                pmf[k] = pmf[k] * pj + pmf[k - 1] * qj
-            pmf[0] *= pj
+            new[k_top] = old[k_top] + old[k_top - 1] * qj
+            for k in range(1, k_top):
+                new[k] = old[k] * pj + old[k - 1] * qj
+            new[0] = old[0] * pj
+            old, new = new, old
+        out[i] = old
     return out
 
 
