@@ -126,3 +126,35 @@ def test_a_seed_whose_every_span_hit_counts_is_not_skipped() -> None:
     assert count(0) == 5
     assert count(5) == 5
     assert count(6) == -1
+
+
+@pytest.mark.parametrize("seed", [4, 5])
+def test_previous_hit_in_one_pass_equals_the_sorted_way(seed: int) -> None:
+    """The compiled pass for hits in time order gives what sorting by (site, time)
+    gives: ties of one site at equal times, sites with one hit, and a ``before``
+    array for the first hit of each site; ``before`` itself is left as it was."""
+    rng = np.random.default_rng(seed)
+    n_sites = 7
+    t = np.sort(rng.integers(0, 200, 500)).astype(np.int64)  # many equal times
+    site = rng.integers(0, n_sites - 1, 500).astype(np.int32)  # the last site: no hit
+    before = rng.integers(-5_000, 0, n_sites).astype(np.int64)
+    kept = before.copy()
+
+    def sorted_way(tt: np.ndarray, ss: np.ndarray, b: np.ndarray | None) -> np.ndarray:
+        order = np.lexsort((tt, ss))
+        out = np.empty(tt.size, dtype=np.int64)
+        for k, i in enumerate(order):
+            same = k > 0 and ss[order[k - 1]] == ss[i]
+            first = NO_PREVIOUS_NS if b is None else b[ss[i]]
+            out[i] = tt[order[k - 1]] if same else first
+        return out
+
+    got = previous_same_site(t, site, before=before)
+    assert got.tolist() == sorted_way(t, site, before).tolist()
+    assert previous_same_site(t, site).tolist() == sorted_way(t, site, None).tolist()
+    assert (before == kept).all()
+    pairs = np.unique(t.astype(np.int64) * n_sites + site)
+    assert pairs.size < t.size  # some site has two hits at one time
+    shuffled = rng.permutation(t.size)  # out of time order: the sorting path
+    ts, ss = t[shuffled], site[shuffled]
+    assert previous_same_site(ts, ss).tolist() == sorted_way(ts, ss, None).tolist()

@@ -63,7 +63,12 @@ import numpy as np
 from tocsin.engine.geometry import combined_sigma_ns, pair_light_time_ns
 from tocsin.engine.livetime import LiveClock
 from tocsin.engine.pairs import window_pairs
-from tocsin.engine.slot_counts import SlotTables, slot_counts, slot_tables
+from tocsin.engine.slot_counts import (
+    SlotTables,
+    previous_in_time_order,
+    slot_counts,
+    slot_tables,
+)
 from tocsin.engine.slot_counts import warm_up as warm_slot_counts
 from tocsin.engine.stats import fisher_combined_sf, poisson_binomial_pmf_top
 from tocsin.model.config import CoincidenceConfig
@@ -250,7 +255,12 @@ NO_PREVIOUS_NS = -(2**62)
 def previous_same_site(t: I64Array, site: I32Array, before: I64Array | None = None) -> I64Array:
     """For each hit, the time (GPS ns) of the previous hit of the same site; for a
     site's first hit here, ``before[site]`` (each site's latest hit before these, when
-    the caller keeps it) or :data:`NO_PREVIOUS_NS`."""
+    the caller keeps it) or :data:`NO_PREVIOUS_NS`. Hits in time order (as the
+    engine keeps them) take one compiled pass; others are sorted by site first."""
+    if t.size < 2 or bool(np.all(t[1:] >= t[:-1])):
+        n = before.size if before is not None else (int(site.max()) + 1 if site.size else 0)
+        last = np.full(n, NO_PREVIOUS_NS, dtype=np.int64) if before is None else before.copy()
+        return previous_in_time_order(t, site, last)
     order = np.lexsort((t, site))
     ts, ss = t[order], site[order]
     first = np.r_[True, ss[1:] != ss[:-1]] if ss.size else np.zeros(0, dtype=bool)

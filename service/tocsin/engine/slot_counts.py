@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tocsin.engine.jit import kernel
-from tocsin.types import BoolArray, I64Array
+from tocsin.types import BoolArray, I32Array, I64Array
 
 
 @dataclass(frozen=True, slots=True)
@@ -134,6 +134,20 @@ def slot_counts(
     return out
 
 
+@kernel
+def previous_in_time_order(t: I64Array, site: I32Array, last: I64Array) -> I64Array:
+    """For hits sorted by time (GPS ns), each one's previous hit time of the same
+    site: ``last[site]`` for a site's first hit here. ``last`` (N,) is updated in
+    place to each site's latest time. Hits of one site at equal times are taken in
+    their given order."""
+    out = np.empty(t.size, dtype=np.int64)
+    for i in range(t.size):
+        s = site[i]
+        out[i] = last[s]
+        last[s] = t[i]
+    return out
+
+
 def warm_up() -> None:
     """Load (or compile, on the first run after an install) the kernel now, on a
     tiny input, rather than in the middle of the first block: the first call in a
@@ -141,3 +155,4 @@ def warm_up() -> None:
     one = np.zeros(1, dtype=np.int64)
     tab = slot_tables(one, one, 1)
     slot_counts(one, one, one, one, one, tab.edges, tab.counted, tab.rows, 1, 0, 0, one)
+    previous_in_time_order(one, np.zeros(1, dtype=np.int32), one.copy())
