@@ -15,17 +15,45 @@ from tocsin.errors import TocsinError
 
 EXIT_OK, EXIT_FAILURE, EXIT_USAGE = 0, 1, 2
 
-#: sub-command name -> module under tocsin.cli providing add_parser(sub) and run(args) -> int
-COMMANDS: dict[str, str] = {
-    "simulate": "tocsin.cli.simulate",
-    "replay": "tocsin.cli.replay",
-    "serve": "tocsin.cli.serve",
-    "demo": "tocsin.cli.demo",
-    "agent": "tocsin.cli.agent",
-    "alerts": "tocsin.cli.alerts",
-    "retract": "tocsin.cli.retract",
-    "tune": "tocsin.cli.tune",
-    "followup": "tocsin.cli.followup",
+#: sub-command name -> (module under tocsin.cli providing add_parser(sub) and
+#: run(args) -> int, its one-line help as that module's add_parser gives it)
+COMMANDS: dict[str, tuple[str, str]] = {
+    "simulate": (
+        "tocsin.cli.simulate",
+        "write a recording of an invented network, with a truth file",
+    ),
+    "replay": (
+        "tocsin.cli.replay",
+        "run the trigger engine over a recording",
+    ),
+    "serve": (
+        "tocsin.cli.serve",
+        "the always-on service: MQTT in, candidates out",
+    ),
+    "demo": (
+        "tocsin.cli.demo",
+        "the whole chain on one machine: broker, 40 simulated sites, service, an event",
+    ),
+    "agent": (
+        "tocsin.cli.agent",
+        "publish one site's hits over MQTT (with a disk spool)",
+    ),
+    "alerts": (
+        "tocsin.cli.alerts",
+        "list archived alerts, or show one as XML",
+    ),
+    "retract": (
+        "tocsin.cli.retract",
+        "withdraw an alert we sent (VOEvent retraction)",
+    ),
+    "tune": (
+        "tocsin.cli.tune",
+        "time-slide background, injection efficiency and recommended thresholds",
+    ),
+    "followup": (
+        "tocsin.cli.followup",
+        "search a recording around an outside alert packet",
+    ),
 }
 
 
@@ -36,25 +64,42 @@ class _Parser(argparse.ArgumentParser):
         raise SystemExit(EXIT_USAGE)
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(command: str | None = None, *, every: bool = False) -> argparse.ArgumentParser:
+    """The ``tocsin`` parser. Only the module of ``command`` (every module with
+    ``every``) is imported and adds its full sub-parser; the others appear with
+    their one-line help only. The command modules import the engine, astropy and
+    matplotlib, so ``tocsin --help`` and a command's own start stay quick."""
     parser = _Parser(
         prog="tocsin",
         description="Coincidence and excess search over networks of particle detectors.",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    for module in COMMANDS.values():
-        importlib.import_module(module).add_parser(sub)
+    for name, (module, one_line) in COMMANDS.items():
+        if every or name == command:
+            importlib.import_module(module).add_parser(sub)
+        else:
+            sub.add_parser(name, help=one_line)
     return parser
 
 
+def _command_in(argv: Sequence[str]) -> str | None:
+    """The sub-command named in ``argv``: its first word that is not an option (the
+    top-level parser has no option taking a value)."""
+    for word in argv:
+        if not word.startswith("-"):
+            return word if word in COMMANDS else None
+    return None
+
+
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    args_in = list(sys.argv[1:] if argv is None else argv)
+    parser = build_parser(_command_in(args_in))
+    args = parser.parse_args(args_in)
     if args.command is None:
         parser.print_help()
         return EXIT_USAGE
     try:
-        code: int = importlib.import_module(COMMANDS[args.command]).run(args)
+        code: int = importlib.import_module(COMMANDS[args.command][0]).run(args)
         return code
     except (TocsinError, FileNotFoundError, ValueError) as exc:
         print(f"tocsin {args.command}: {exc}", file=sys.stderr)
