@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from tocsin.errors import BatchRejected
 from tocsin.io.recording import Rejected, decode_line
 from tocsin.model.batch import REJECT_REASONS, parse_batch
-from tocsin.model.registry import SiteRegistry
+from tocsin.model.registry import Site, SiteRegistry
 
 T0 = 1_450_000_000 * 10**9
 
@@ -46,6 +46,8 @@ def test_heartbeat_is_valid(small_registry: SiteRegistry) -> None:
     ("over", "reason", "field"),
     [
         ({"v": 2}, "bad_version", "v"),
+        ({"v": True}, "bad_version", "v"),
+        ({"v": 1.0}, "bad_version", "v"),
         ({"site": "nowhere-9"}, "unknown_site", "site"),
         ({"seq": -1}, "bad_schema", "seq"),
         ({"seq": "7"}, "bad_schema", "seq"),
@@ -187,3 +189,74 @@ def test_the_plain_path_takes_the_common_batch() -> None:
     assert _plainly_valid(good(amp=None, t=[T0 + 5, float(T0 + 6)])) is None
     for bad in ({"seq": True}, {"live": [T0, True]}, {"t": [True]}, {"v": True}, {"x": 1}):
         assert _plainly_valid(good(amp=None, **bad)) is None, bad
+
+
+_REG_ONE = SiteRegistry(
+    [Site(id="alder-fen-1", lat_deg=1, lon_deg=2, height_m=0, clock_sigma_ns=10)]
+)
+_SPAN = 10**9
+
+
+@st.composite
+def _near_valid_batches(draw: st.DrawFn) -> dict[str, Any]:
+    """A batch that is valid, or broken in one place by an edit the fast path must
+    notice: a hit at or past a live edge, out of order, a boolean or float hit,
+    long batches, a wrong version or site, amplitudes, an unknown key."""
+    start = draw(st.sampled_from([0, T0, 2**63 - 1 - _SPAN]))
+    end = start + draw(st.sampled_from([0, 1, _SPAN, 3600 * 10**9 + 1]))
+    n = draw(st.sampled_from([0, 1, 5, 64, 65]))
+    t = sorted(draw(st.lists(st.integers(start, max(start, end - 1)), min_size=n, max_size=n)))
+    obj: dict[str, Any] = {"v": 1, "site": "alder-fen-1", "seq": 3, "live": [start, end], "t": t}
+    edit = draw(
+        st.sampled_from(
+            ["none", "at_end", "before_start", "swap", "bool", "float", "v", "site", "amp", "key"]
+        )
+    )
+    if edit == "at_end":
+        obj["t"] = [*t, end]
+    elif edit == "before_start":
+        obj["t"] = [start - 1, *t]
+    elif edit == "swap" and len(t) >= 2 and t[0] != t[1]:
+        obj["t"] = [t[1], t[0], *t[2:]]
+    elif edit == "bool":
+        obj["t"] = [*t, True]
+    elif edit == "float":
+        obj["t"] = [float(x) for x in t] or [float(start)]
+    elif edit == "v":
+        obj["v"] = draw(st.sampled_from([True, 1.0, 2]))
+    elif edit == "site":
+        obj["site"] = draw(st.sampled_from(["nowhere-9", 7]))
+    elif edit == "amp":
+        obj["amp"] = [1.0] * len(t)
+    elif edit == "key":
+        obj["x"] = 1
+    return obj
+
+
+@settings(max_examples=600)
+@given(obj=_near_valid_batches(), recv=st.sampled_from([None, 0, T0]))
+def test_the_one_pass_batch_is_what_the_rule_by_rule_path_gives(
+    obj: dict[str, Any], recv: int | None
+) -> None:
+    """Property: the one-pass path (:func:`_plain_batch`) returns a batch only if the
+    rule-by-rule path accepts it, with the same fields and array; and it takes every
+    short batch without amplitudes that the rule-by-rule path accepts, so the
+    common batch never pays for the slow way."""
+    from tocsin.model.batch import _checked_batch, _plain_batch
+
+    fast = _plain_batch(obj, _REG_ONE, recv)
+    try:
+        slow = _checked_batch(obj, _REG_ONE, recv_ns=recv)
+    except BatchRejected as exc:
+        event(f"rejected: {exc.reason}")
+        assert fast is None
+        return
+    plain_kind = (
+        "amp" not in obj and len(obj["t"]) <= 64 and obj.keys() <= {"v", "site", "seq", "live", "t"}
+    )
+    event("one pass" if fast is not None else "rule by rule")
+    if fast is None:
+        assert not plain_kind
+        return
+    assert fast[:5] + fast[6:] == slow[:5] + slow[6:]
+    assert fast.t.dtype == slow.t.dtype and fast.t.tolist() == slow.t.tolist()

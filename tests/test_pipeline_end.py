@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
 import gzip
 from pathlib import Path
 
@@ -27,7 +26,7 @@ def _fed() -> tuple[Pipeline, list[str]]:
             if isinstance(item, HitBatch):
                 # arrival as the live service stamps past data: max(previous, batch end)
                 recv = max(recv, item.live_end)
-                item = dataclasses.replace(item, recv_ns=recv)
+                item = item._replace(recv_ns=recv)
             ids += [f"{c.id}/{c.revision}" for c in pipe.offer(item)]
     return pipe, ids
 

@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import dataclasses
 import logging
 import math
 import random
@@ -230,7 +229,7 @@ class Service:
         recv = max(self._last_recv, self._last_tick, min(wall, batch.live_end))
         self._last_recv = recv
         self._max_live_end = max(self._max_live_end, batch.live_end)
-        batch = dataclasses.replace(batch, recv_ns=recv)
+        batch = batch._replace(recv_ns=recv)
         self.journal.append(orjson.dumps(batch.to_json_obj()), recv)
         self.metrics.journal_lines.inc()
         cands = self.pipeline.offer(batch)

@@ -2,17 +2,20 @@
 
 A batch that breaks any rule is rejected whole with :class:`BatchRejected`,
 whose ``reason`` is one of :data:`REJECT_REASONS` and whose ``field`` names the
-offending field. Structure and types are checked by pydantic (strict: no
-coercion of strings or booleans to numbers), except for a batch that plainly
-passes (:func:`_plainly_valid`: integers only, no amplitudes), which a few plain
-type tests take without the generic validator; ordering and bounds of the hit
-times are then checked, in plain Python for short batches and with numpy for
-long ones.
+offending field. The common batch (short, no amplitudes, plainly valid) is
+taken in one pass of plain tests (:func:`_plain_batch`); every other batch goes
+rule by rule (:func:`_checked_batch`), which names the first rule broken. There,
+structure and types are checked by pydantic (strict: no coercion of strings or
+booleans to numbers), except for a batch that plainly passes
+(:func:`_plainly_valid`: integers only, no amplitudes), which a few plain type
+tests take without the generic validator; ordering and bounds of the hit times
+are then checked, in plain Python for short batches and with numpy for long
+ones. A property test holds the one-pass path to what the rule-by-rule path
+accepts.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Annotated, Any, Literal, NamedTuple
 
 import numpy as np
@@ -60,9 +63,12 @@ class _BatchV1(BaseModel):
     amp: list[Annotated[float, Field(strict=False, allow_inf_nan=False)]] | None = None
 
 
-@dataclass(frozen=True, slots=True)
-class HitBatch:
-    """A validated batch. ``t`` is sorted int64 GPS ns inside ``[live_start, live_end)``."""
+class HitBatch(NamedTuple):
+    """A validated batch. ``t`` is sorted int64 GPS ns inside ``[live_start, live_end)``.
+
+    Immutable; a named tuple rather than a frozen dataclass because one is built
+    per batch on the hot path of intake and replay, and a frozen dataclass takes
+    ~2 us to build (a tuple ~0.3 us)."""
 
     site: str
     site_index: int
@@ -161,6 +167,41 @@ def _validated(obj: dict[str, Any]) -> _Fields:
         raise BatchRejected("bad_schema", loc, err["msg"]) from None
 
 
+_PLAIN_KEYS = frozenset({"v", "site", "seq", "live", "t"})
+
+
+def _plain_batch(obj: Any, registry: SiteRegistry, recv_ns: GpsNs | None) -> HitBatch | None:
+    """The batch, when it is a short (<= ``_SHORT`` hits) batch without amplitudes that
+    plainly passes every rule: the fields of :func:`_plainly_valid`, a known site, a
+    live interval of at most ``MAX_LIVE_NS`` and hit times ascending inside it.
+    Otherwise None, and :func:`_checked_batch` decides and names the error. One
+    pass, no intermediate objects: the common 1 s batch of an agent."""
+    if type(obj) is not dict or not obj.keys() <= _PLAIN_KEYS:
+        return None
+    get = obj.get
+    v, site, seq, live, t = get("v"), get("site"), get("seq"), get("live"), get("t")
+    if type(v) is not int or v != 1 or type(seq) is not int or not 0 <= seq <= I64_MAX:
+        return None
+    if type(site) is not str or type(live) is not list or len(live) != 2:
+        return None
+    if type(t) is not list or len(t) > _SHORT:
+        return None
+    index = registry.index_or_none(site)
+    start, end = live
+    if index is None or type(start) is not int or type(end) is not int:
+        return None
+    if not 0 <= start <= end <= I64_MAX or end - start > MAX_LIVE_NS:
+        return None
+    prev = start
+    for x in t:  # integers (not booleans), ascending, none before the live start
+        if type(x) is not int or x < prev:
+            return None
+        prev = x
+    if t and prev >= end:
+        return None
+    return HitBatch(site, index, seq, start, end, np.array(t, dtype=np.int64), None, recv_ns)
+
+
 def parse_batch(
     obj: Any,
     registry: SiteRegistry,
@@ -173,11 +214,26 @@ def parse_batch(
     ``topic_site`` (the site segment of the MQTT topic, when there is one) must
     equal the batch's ``site``. Raises :class:`BatchRejected` naming the field.
     """
+    plain = _plain_batch(obj, registry, recv_ns)
+    if plain is not None and (topic_site is None or topic_site == plain.site):
+        return plain
+    return _checked_batch(obj, registry, topic_site=topic_site, recv_ns=recv_ns)
+
+
+def _checked_batch(
+    obj: Any,
+    registry: SiteRegistry,
+    *,
+    topic_site: str | None = None,
+    recv_ns: GpsNs | None = None,
+) -> HitBatch:
+    """:func:`parse_batch` rule by rule, raising :class:`BatchRejected` at the first
+    one broken (the whole way, for every batch :func:`_plain_batch` does not take)."""
     if not isinstance(obj, dict):
         raise BatchRejected(
             "bad_schema", "<root>", f"expected a JSON object, got {type(obj).__name__}"
         )
-    if obj.get("v", None) != 1:
+    if type(obj.get("v", None)) is not int or obj["v"] != 1:  # true is not 1
         raise BatchRejected(
             "bad_version", "v", f"schema version {obj.get('v')!r} is not supported (only 1)"
         )

@@ -60,6 +60,10 @@ class SiteRegistry:
     def __contains__(self, site_id: object) -> bool:
         return site_id in self._index
 
+    def index_or_none(self, site_id: str) -> int | None:
+        """Integer index of ``site_id``, None if it is not a known site."""
+        return self._index.get(site_id)
+
     def index(self, site_id: SiteId) -> int:
         """Integer index of ``site_id``; raises ``KeyError`` naming the id if unknown."""
         try:
