@@ -248,6 +248,10 @@ def _null_tables(q: F64Array, active: BoolArray, e: F64Array) -> tuple[F64Array,
     return tail_gt, point
 
 
+_BOUND_REL = 1e-9
+"""Relative margin of the decisions :meth:`CoincidenceTrigger._surely_inactive` takes
+from bounds (rounding of the exact sums is ~1e-15 relative)."""
+
 NO_PREVIOUS_NS = -(2**62)
 """Stands for "no previous hit": far below any GPS time, and differences stay in int64."""
 
@@ -285,7 +289,43 @@ class CoincidenceTrigger:
         not_self = ~np.eye(n, dtype=bool)
         self._mean_w = [(w * not_self).sum(axis=1) / max(n - 1, 1) for w in self.geom.width]
         """Per scale, each seed site's mean slot width (ns) over the other sites."""
+        self._max_w = [float((w * not_self).max()) if n > 1 else 0.0 for w in self.geom.width]
+        """Per scale, the widest slot (ns) between two different sites."""
+        self.skip_by_bounds = True
+        """Skip a scale's N x N tables when bounds show no seed site is active there;
+        the tables are the same either way (tested)."""
         warm_slot_counts()
+
+    def _surely_inactive(self, k: int, lam: F64Array, may: BoolArray, prev_e: F64Array) -> bool:
+        """True when bounds on the expected neighbour count ``e`` show that no seed
+        site in ``may`` is active at scale ``k`` (each either not :attr:`sparse
+        <CoincidenceConfig.max_expected_neighbours>` or not fresh against the
+        previous scale's ``prev_e``), without the N x N occupancies.
+
+        With ``x = lam_j w_sj``, an occupancy ``1 - exp(-x)`` lies between
+        ``x (1 - x_max / 2)`` and ``x``; when every pair is below the occupancy cap
+        (``x_max`` below ``-log(1 - cap)``) every pair counts, so ``e`` lies between
+        ``(1 - x_max / 2) E`` and ``E``, ``E = sum_j x``: one matrix-vector
+        product. Decisions keep a relative margin of 1e-9 (the exact ``e`` is a
+        sum of rounded terms), so they are those the exact ``e`` gives."""
+        width = self.geom.width[k]
+        lam_max = float(lam.max())
+        x_max = lam_max * float(self._max_w[k])
+        x_cap = -np.log1p(-self.cfg.occupancy_cap)
+        if not x_max <= x_cap * (1.0 - _BOUND_REL):
+            return False  # some pair may be over the cap: no lower bound this way
+        own = np.diagonal(width) * lam
+        upper = width @ lam - own  # E, the seed's own site left out
+        if np.any(own > upper):  # cancellation could spoil the margin: decide exactly
+            return False
+        lower = upper * (1.0 - x_max / 2.0)
+        margin = 1.0 + _BOUND_REL
+        not_sparse = lower > self.cfg.max_expected_neighbours * margin
+        ratio = self.cfg.redundancy_ratio
+        stale = ~np.isnan(prev_e)
+        stale &= upper * margin < ratio * prev_e
+        stale &= lower * ratio > prev_e * margin
+        return bool(np.all(not_sparse[may] | stale[may]))
 
     @property
     def max_ahead_ns(self) -> int:
@@ -316,7 +356,9 @@ class CoincidenceTrigger:
             # either: its hits would re-find every cluster of quieter sites.
             quiet = -np.expm1(-lam * self._mean_w[k]) <= self.cfg.occupancy_cap
             may = ok & quiet & (lam > 0)
-            if not may.any():  # no seed site can be active: no N x N work at all
+            if not may.any() or (
+                self.skip_by_bounds and self._surely_inactive(k, lam, may, prev_e)
+            ):  # no seed site can be active: no N x N tables
                 scales.append(_inactive_scale(n))
                 continue
             occ = -np.expm1(-lam[None, :] * self.geom.width[k])
