@@ -164,3 +164,41 @@ def test_screened_search_equals_the_full_search(
         if q < 0.1:
             assert n_screened < 0.5 * n_full, (q, n_screened, n_full)
     assert n_all == n_full  # without the screen every candidate seed is searched
+
+
+def test_rows_skipped_against_the_limit_change_no_reported_bound() -> None:
+    """The kernel skips a row whose cheap lower bound shows it can get below neither
+    ``limit`` nor the rows already seen. Reported bounds must be those of the full
+    pass, cut at ``limit`` (``inf`` above it): checked at limits placed at quantiles
+    of the seeds' own bounds, so that many seeds sit near each limit."""
+    from tocsin.engine.front_bound import front_lower_bounds
+
+    reg = dense_array()
+    search = FrontSearch(reg, CoincidenceConfig())
+    t, s = stream(reg)
+    s64 = s.astype(np.int64)
+    wide = int(search.widest.max())
+    seeds = np.arange(t.size)
+
+    def bounds(limit: float) -> np.ndarray:
+        out: np.ndarray = front_lower_bounds(
+            t,
+            s64,
+            t[seeds],
+            s64[seeds],
+            search.back_ns,
+            search.ahead_ns[wide],
+            front.K_MAX,
+            wide,
+            search._geo,
+            limit,
+        )
+        return out
+
+    full = bounds(np.inf)
+    finite = full[np.isfinite(full)]
+    assert finite.size > 500  # many seeds have rows
+    for q in (0.001, 0.05, 0.5, 0.95):
+        limit = float(np.quantile(finite, q))
+        want = np.where(full <= limit, full, np.inf)
+        assert np.array_equal(bounds(limit), want), q

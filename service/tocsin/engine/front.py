@@ -381,6 +381,7 @@ class FrontSearch:
         """Which seeds (times ``t_seed``, sites ``s_seed``) may pass: their compiled
         lower bound on the front p-value (:mod:`tocsin.engine.front_bound`) at some
         scale is within :data:`BOUND_MARGIN` of ``p_max``. The others cannot pass."""
+        limit = p_max * (1.0 + BOUND_MARGIN)
         bounds = front_lower_bounds(
             t_sub,
             s_sub.astype(np.int64),
@@ -391,8 +392,9 @@ class FrontSearch:
             K_MAX,
             wide,
             self._geo,
+            limit,
         )
-        ok: BoolArray = np.asarray((bounds <= p_max * (1.0 + BOUND_MARGIN)).any(axis=1))
+        ok: BoolArray = np.asarray((bounds <= limit).any(axis=1))
         return ok
 
     def _evaluate_seeds(

@@ -12,7 +12,11 @@ pass per seed (numba, no Python per hit) and returns, per seed and front scale,
 the smallest of the per-row lower bounds that :meth:`FrontSearch._at_scale`
 applies to its best row (``keep``). Since the best row is one of the rows, ``B``
 is at most that bound, and every further step of the exact p only raises it, so a
-seed with ``B > p_max`` cannot pass and need not be searched in numpy.
+seed with ``B > p_max`` cannot pass and need not be searched in numpy. ``B`` is
+reported only where it is at most the caller's ``limit`` (``inf`` elsewhere): a row
+whose cheap lower bound ``u z (1 - z/2)`` (no logarithms, no exponentials) shows it
+can get below neither ``limit`` nor the rows already seen is not worked out, and
+that skips most of the rows' transcendental work.
 
 Conservative by construction, so the candidates do not change:
 
@@ -95,22 +99,6 @@ def _fisher_sf(log_u: float, k: int) -> float:
 
 
 @kernel
-def _min_angle_sin(l1: float, l2: float, bj: F64Array, bk: F64Array, twice_area: float) -> float:
-    """Sine of the smallest interior angle of the triangle with sides ``bj``, ``bk``
-    (lengths ``l1``, ``l2``) at one corner (as
-    :func:`tocsin.engine.geometry.triangle_min_angle_deg`, before its arcsin)."""
-    dx, dy, dz = bk[0] - bj[0], bk[1] - bj[1], bk[2] - bj[2]
-    l3 = math.sqrt(dx * dx + dy * dy + dz * dz)
-    lo = min(l1, l2, l3)
-    hi = max(l1, l2, l3)
-    mid = l1 + l2 + l3 - lo - hi
-    denom = mid * hi
-    if not denom > 0.0:
-        return 0.0
-    return min(max(twice_area / denom, 0.0), 1.0)
-
-
-@kernel
 def _seed_bounds(
     kk: int,
     nbs: I64Array,
@@ -119,37 +107,42 @@ def _seed_bounds(
     out_row: F64Array,
     buf: F64Array,
     flags: BoolArray,
-    vec: F64Array,
+    cand: I64Array,
     slot_w: F64Array,
     slot_in: BoolArray,
     wide: int,
     geo: FrontGeometry,
+    limit: float,
 ) -> None:
     """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
-    ``buf`` (14, K), ``flags`` (3, K), ``vec`` (8, 3), ``slot_w`` (F, K) and
+    ``buf`` (15, K), ``flags`` (3, K), ``cand`` (K,), ``slot_w`` (F, K) and
     ``slot_in`` (F, K) are scratch space (K >= kk)."""
     ecef, up, sigma, pair_ns, scales_ns = geo.ecef, geo.up, geo.sigma, geo.pair_ns, geo.scales_ns
     tol_base_ns, k_sig = geo.tol_base_ns, geo.k_sig
     min_angle_deg, horizon_slack = geo.min_angle_deg, geo.horizon_slack
     c = C_M_PER_NS
     tol_wide = tol_base_ns + scales_ns[wide]
-    bl = buf[0:3].T  # (k_max, 3) view
+    blx, bly, blz = buf[0], buf[1], buf[2]
     delay, base_delta, abs_resid, sig2 = buf[3], buf[4], buf[5], buf[6]
-    up_l = buf[7:10].T  # (k_max, 3) view
-    ulj, ulk, el3, blen = buf[10], buf[11], buf[12], buf[13]
+    upx, upy, upz = buf[7], buf[8], buf[9]
+    ulj, ulk, el3, blen, ratio = buf[10], buf[11], buf[12], buf[13], buf[14]
     sin_min = math.sin(math.radians(min_angle_deg)) * (1.0 - 1e-12)
-    others, cand_l, cons = flags[0], flags[1], flags[2]
-    bj, bk, w, u_j, u_k, e3, n0, nv = vec[0], vec[1], vec[2], vec[3], vec[4], vec[5], vec[6], vec[7]
+    others, cons = flags[0], flags[2]
+    ups0, ups1, ups2 = up[s, 0], up[s, 1], up[s, 2]
+    ss = sigma[s]
     # per neighbour hit, once per seed: baseline, local up, clock variance, and per
     # scale whether it is in its slot and the slot's full width
     for col in range(kk):
         site_l = nbs[col]
-        for q in range(3):
-            bl[col, q] = ecef[s, q] - ecef[site_l, q]
-            up_l[col, q] = up[site_l, q]
+        blx[col] = ecef[s, 0] - ecef[site_l, 0]
+        bly[col] = ecef[s, 1] - ecef[site_l, 1]
+        blz[col] = ecef[s, 2] - ecef[site_l, 2]
+        upx[col] = up[site_l, 0]
+        upy[col] = up[site_l, 1]
+        upz[col] = up[site_l, 2]
         sig2[col] = sigma[site_l] ** 2
-        blen[col] = math.sqrt(bl[col, 0] ** 2 + bl[col, 1] ** 2 + bl[col, 2] ** 2)
+        blen[col] = math.sqrt(blx[col] ** 2 + bly[col] ** 2 + blz[col] ** 2)
         lo_l = float(pair_ns[s, site_l, 0])
         base_l = float(pair_ns[s, site_l, 1])
         for f in range(wide + 1):
@@ -163,33 +156,42 @@ def _seed_bounds(
             if sa == sb:
                 continue
             # --- the triple (seed, a, b), as solve_triples
-            for q in range(3):
-                bj[q] = bl[a, q]
-                bk[q] = bl[b, q]
+            bj0, bj1, bj2 = blx[a], bly[a], blz[a]
+            bk0, bk1, bk2 = blx[b], bly[b], blz[b]
             dj = nbd[a] * c
             dk = nbd[b] * c
-            w[0] = bj[1] * bk[2] - bj[2] * bk[1]
-            w[1] = bj[2] * bk[0] - bj[0] * bk[2]
-            w[2] = bj[0] * bk[1] - bj[1] * bk[0]
-            w2 = w[0] * w[0] + w[1] * w[1] + w[2] * w[2]
+            w0 = bj1 * bk2 - bj2 * bk1
+            w1 = bj2 * bk0 - bj0 * bk2
+            w2_ = bj0 * bk1 - bj1 * bk0
+            w2 = w0 * w0 + w1 * w1 + w2_ * w2_
             if not (np.isfinite(w2) and w2 > 0.0):
                 continue
-            if _min_angle_sin(blen[a], blen[b], bj, bk, math.sqrt(w2)) < sin_min:
+            # smallest interior angle (as geometry.triangle_min_angle_deg, its sine)
+            dx, dy, dz = bk0 - bj0, bk1 - bj1, bk2 - bj2
+            l1, l2 = blen[a], blen[b]
+            l3 = math.sqrt(dx * dx + dy * dy + dz * dz)
+            lo_len = min(l1, l2, l3)
+            hi_len = max(l1, l2, l3)
+            mid = l1 + l2 + l3 - lo_len - hi_len
+            denom = mid * hi_len
+            sin_a = min(max(math.sqrt(w2) / denom, 0.0), 1.0) if denom > 0.0 else 0.0
+            if sin_a < sin_min:
                 continue  # nearly collinear (the threshold errs towards keeping)
-            u_j[0] = (bk[1] * w[2] - bk[2] * w[1]) / w2
-            u_j[1] = (bk[2] * w[0] - bk[0] * w[2]) / w2
-            u_j[2] = (bk[0] * w[1] - bk[1] * w[0]) / w2
-            u_k[0] = (w[1] * bj[2] - w[2] * bj[1]) / w2
-            u_k[1] = (w[2] * bj[0] - w[0] * bj[2]) / w2
-            u_k[2] = (w[0] * bj[1] - w[1] * bj[0]) / w2
+            uj0 = (bk1 * w2_ - bk2 * w1) / w2
+            uj1 = (bk2 * w0 - bk0 * w2_) / w2
+            uj2 = (bk0 * w1 - bk1 * w0) / w2
+            uk0 = (w1 * bj2 - w2_ * bj1) / w2
+            uk1 = (w2_ * bj0 - w0 * bj2) / w2
+            uk2 = (w0 * bj1 - w1 * bj0) / w2
             rw = math.sqrt(w2)
-            for q in range(3):
-                e3[q] = w[q] / rw
-                n0[q] = dj * u_j[q] + dk * u_k[q]
-            norm0 = math.sqrt(n0[0] * n0[0] + n0[1] * n0[1] + n0[2] * n0[2])
+            e30, e31, e32 = w0 / rw, w1 / rw, w2_ / rw
+            n00 = dj * uj0 + dk * uk0
+            n01 = dj * uj1 + dk * uk1
+            n02 = dj * uj2 + dk * uk2
+            norm0 = math.sqrt(n00 * n00 + n01 * n01 + n02 * n02)
             alpha2 = 1.0 - norm0 * norm0
-            x = n0[0] * u_j[0] + n0[1] * u_j[1] + n0[2] * u_j[2]
-            y = n0[0] * u_k[0] + n0[1] * u_k[1] + n0[2] * u_k[2]
+            x = n00 * uj0 + n01 * uj1 + n02 * uj2
+            y = n00 * uk0 + n01 * uk1 + n02 * uk2
             xy = abs(x) + abs(y)
             over = alpha2 < 0.0
             if over and not (norm0 - 1.0 <= c * tol_wide * xy / norm0):
@@ -197,45 +199,41 @@ def _seed_bounds(
             alpha = 0.0 if over else math.sqrt(alpha2)
             scale0 = 1.0 / norm0 if (over and norm0 > 0.0) else 1.0
             excess_norm = norm0 - 1.0 if over else 0.0
-            ss, sj, sk = sigma[s], sigma[sa], sigma[sb]
+            sj, sk = sigma[sa], sigma[sb]
             s_alpha2 = 2.0 * c * math.sqrt((x * sj) ** 2 + (y * sk) ** 2 + ((x + y) * ss) ** 2)
             alpha_r = math.sqrt(max(alpha2, 0.0) + s_alpha2)
             inv_alpha = 1.0 / alpha_r if alpha_r > 0.0 else 0.0
             # the triple's own projections of every further hit's baseline (the same
             # for both mirror solutions); the triple's own sites never count
-            n_other = 0
+            n_cand = 0
             for col in range(kk):
                 site_l = nbs[col]
-                cand_l[col] = site_l != sa and site_l != sb
-                if cand_l[col]:
-                    n_other += 1
-                    bx, by, bz = bl[col, 0], bl[col, 1], bl[col, 2]
-                    ulj[col] = bx * u_j[0] + by * u_j[1] + bz * u_j[2]
-                    ulk[col] = bx * u_k[0] + by * u_k[1] + bz * u_k[2]
-                    el3[col] = bx * e3[0] + by * e3[1] + bz * e3[2]
-            if n_other == 0:
+                if site_l != sa and site_l != sb:
+                    cand[n_cand] = col
+                    n_cand += 1
+                    bx, by, bz = blx[col], bly[col], blz[col]
+                    ulj[col] = bx * uj0 + by * uj1 + bz * uj2
+                    ulk[col] = bx * uk0 + by * uk1 + bz * uk2
+                    el3[col] = bx * e30 + by * e31 + bz * e32
+            if n_cand == 0:
                 continue
             for mirror in range(2):
                 sign = 1.0 if mirror == 0 else -1.0
-                for q in range(3):
-                    nv[q] = n0[q] * scale0 + sign * alpha * e3[q]
-                if nv[0] * up[s, 0] + nv[1] * up[s, 1] + nv[2] * up[s, 2] < -horizon_slack:
+                nv0 = n00 * scale0 + sign * alpha * e30
+                nv1 = n01 * scale0 + sign * alpha * e31
+                nv2 = n02 * scale0 + sign * alpha * e32
+                if nv0 * ups0 + nv1 * ups1 + nv2 * ups2 < -horizon_slack:
                     continue
                 # --- predictions for every further hit (as _predict_rows)
                 any_other = False
-                for col in range(kk):
+                for p in range(n_cand):
+                    col = cand[p]
                     others[col] = False
-                    if not cand_l[col]:
-                        continue
-                    if (
-                        nv[0] * up_l[col, 0] + nv[1] * up_l[col, 1] + nv[2] * up_l[col, 2]
-                        < -horizon_slack
-                    ):
+                    if nv0 * upx[col] + nv1 * upy[col] + nv2 * upz[col] < -horizon_slack:
                         continue  # the source is below this site's horizon
                     others[col] = True
                     any_other = True
-                    bx, by, bz = bl[col, 0], bl[col, 1], bl[col, 2]
-                    delay[col] = (nv[0] * bx + nv[1] * by + nv[2] * bz) / c
+                    delay[col] = (nv0 * blx[col] + nv1 * bly[col] + nv2 * blz[col]) / c
                     el = el3[col] * inv_alpha
                     g_j = ulj[col] - sign * (x * el)
                     g_k = ulk[col] - sign * (y * el)
@@ -255,28 +253,46 @@ def _seed_bounds(
                     if not (in_slot[a] and in_slot[b]):
                         continue
                     n_cons = 0
-                    log_u = 0.0
+                    u_prod = 1.0
                     prod = 1.0
-                    for col in range(kk):
+                    for p in range(n_cand):
+                        col = cand[p]
                         delta = base_delta[col] + w_ns
                         ok = others[col] and in_slot[col] and abs_resid[col] <= delta
                         if ok:  # an earlier consistent hit of the same site wins
                             site_l = nbs[col]
-                            for e in range(col):
+                            for q in range(p):
+                                e = cand[q]
                                 if cons[e] and nbs[e] == site_l:
                                     ok = False
                                     break
                         cons[col] = ok
                         if ok:
                             n_cons += 1
-                            log_u += math.log(max(abs_resid[col] / delta, 1e-300))
+                            ratio[col] = abs_resid[col] / delta
+                            u_prod *= ratio[col]
                             prod *= min(max(2.0 * delta / width[col], 0.0), 1.0)
                     if n_cons == 0:
                         continue
                     m = 3 + n_cons
                     c_m = (m - 1) * (m - 2) / 2.0
-                    bound = _fisher_sf(log_u, m - 3) * -math.expm1(-prod / c_m)
-                    if bound < out_row[f]:
+                    z = prod / c_m
+                    # The row's bound G(log u, m - 3) (1 - exp(-z)) is at least
+                    # u z (1 - z / 2) (G >= exp(log u) = u; 1 - exp(-z) >= z - z^2 / 2):
+                    # a row that cannot get below what is already recorded, nor below
+                    # ``limit``, is not worked out (logs and exponentials are most of
+                    # a row's cost). The margin covers the rounding of u and of the
+                    # exact row (~1e-15 relative); below 1e-290 u is not trusted.
+                    lower = u_prod * z * (1.0 - 0.5 * z)
+                    if u_prod > 1e-290 and lower > min(out_row[f], limit) * (1.0 + 1e-12):
+                        continue
+                    log_u = 0.0
+                    for p in range(n_cand):
+                        col = cand[p]
+                        if cons[col]:
+                            log_u += math.log(max(ratio[col], 1e-300))
+                    bound = _fisher_sf(log_u, m - 3) * -math.expm1(-z)
+                    if bound <= limit and bound < out_row[f]:
                         out_row[f] = bound
 
 
@@ -291,10 +307,11 @@ def front_lower_bounds(
     k_max: int,
     wide: int,
     geo: FrontGeometry,
+    limit: float,
 ) -> F64Array:
-    """Lower bound ``B`` (module doc) per seed and front scale; ``inf`` where the seed
-    has fewer than three other sites in its slots, no row reaches m >= 4, or the
-    scale is above ``wide``.
+    """Lower bound ``B`` (module doc) per seed and front scale where it is at most
+    ``limit``; ``inf`` elsewhere, and where the seed has fewer than three other sites
+    in its slots, no row reaches m >= 4, or the scale is above ``wide``.
 
     ``t`` (sorted, GPS ns) and ``site`` are the hits of the sites that take part;
     ``t_seed`` (sorted) and ``seed_site`` the seeds. A seed's neighbour hits are, as
@@ -311,11 +328,11 @@ def front_lower_bounds(
     out = np.full((n_seed, scales_ns.size), _NO_BOUND)
     nbs = np.empty(k_max, dtype=np.int64)
     nbd = np.empty(k_max)
-    buf = np.empty((14, k_max))
+    buf = np.empty((15, k_max))
     slot_w = np.empty((scales_ns.size, k_max))
     slot_in = np.zeros((scales_ns.size, k_max), dtype=np.bool_)
     flags = np.zeros((3, k_max), dtype=np.bool_)
-    vec = np.empty((8, 3))
+    cand = np.empty(k_max, dtype=np.int64)  # the further hits of a triple
     distinct = np.zeros(ecef.shape[0], dtype=np.int64)  # last seed (+1) that saw a site
     left = 0
     n = t.size
@@ -369,11 +386,12 @@ def front_lower_bounds(
             out[i],
             buf,
             flags,
-            vec,
+            cand,
             slot_w,
             slot_in,
             wide,
             geo,
+            limit,
         )
     return out
 
@@ -404,4 +422,5 @@ def warm_up() -> None:
             0.0,
             0.0,
         ),
+        1.0,
     )
