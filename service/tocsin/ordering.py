@@ -53,6 +53,12 @@ class Verdict:
     new_gaps: int = 0
 
 
+_ACCEPTED = Verdict("accepted")
+_DUPLICATE = Verdict("duplicate")
+_LATE = Verdict("late")
+"""Shared verdicts without new gaps (immutable; one batch after another gets them)."""
+
+
 class Orderer:
     """Reorders accepted batches into blocks behind a watermark ``now - lateness``."""
 
@@ -89,17 +95,17 @@ class Orderer:
         st = self._seq[batch.site_index]
         if batch.seq in st.seen or (batch.seq <= st.max_seq - SEQ_MEMORY):
             self.n_duplicate += 1
-            return Verdict("duplicate")
+            return _DUPLICATE
         floor = now - self.lateness_ns
-        if self.watermark is not None:
-            floor = max(floor, self.watermark)
+        if self.watermark is not None and self.watermark > floor:
+            floor = self.watermark
         new_gaps = self._note_seq(st, batch.seq)
         if batch.live_start < floor:
             self.n_late += 1
-            return Verdict("late", new_gaps)
+            return Verdict("late", new_gaps) if new_gaps else _LATE
         self._pending.append(batch)
         self.n_accepted += 1
-        return Verdict("accepted", new_gaps)
+        return Verdict("accepted", new_gaps) if new_gaps else _ACCEPTED
 
     def _note_seq(self, st: SiteSeqState, seq: int) -> int:
         new_gaps = 0
@@ -135,7 +141,10 @@ class Orderer:
             return None
         self._now = now
         w = now - self.lateness_ns
-        return self._release_to(w - w % self.quantum_ns)
+        w -= w % self.quantum_ns
+        if self.watermark is not None and w <= self.watermark:
+            return None  # the watermark does not move (most arrivals)
+        return self._release_to(w)
 
     def data_end(self) -> GpsNs | None:
         """The latest of the watermark and the end of any pending live interval (ns)."""

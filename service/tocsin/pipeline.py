@@ -92,7 +92,7 @@ class Pipeline:
             c.rejected[verdict.status if verdict.status == "late" else "duplicate_seq"] += 1
             return []
         c.accepted += 1
-        c.hits_accepted += item.n_hits
+        c.hits_accepted += len(item.t)
         return self._run(self.orderer.release())
 
     def tick(self, now_ns: int) -> list[Candidate]:
