@@ -12,6 +12,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
+from tocsin.cli.main import COMMANDS
 from tocsin.live import logs
 from tocsin.live.agent import (
     MAX_UPLOAD_BATCHES,
@@ -35,7 +36,7 @@ from tocsin.model.service_config import ENV_PASSWORD, ENV_URL, ENV_USER, BrokerC
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "agent",
-        help="publish one site's hits over MQTT (with a disk spool)",
+        help=COMMANDS["agent"][1],
         description=(
             "Read one site's hit times, cut them into hit batches (v1) of --batch-s seconds of "
             "GPS time, keep every batch in a disk spool until the broker has acknowledged it "

@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Any
 
 from tocsin.alerts.archive import Archive
+from tocsin.cli.main import COMMANDS
 from tocsin.errors import ConfigError
 from tocsin.model.service_config import load_service_config
 
@@ -17,7 +18,7 @@ ARCHIVE_NAME = "alerts.sqlite"
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "alerts",
-        help="list archived alerts, or show one as XML",
+        help=COMMANDS["alerts"][1],
         description=(
             "List the alerts in an archive (newest first) with their deliveries, or print one "
             "alert's VOEvent packet. The archive is DATA_DIR/alerts.sqlite of a service config, "

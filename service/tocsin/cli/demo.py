@@ -8,6 +8,7 @@ import tempfile
 from pathlib import Path
 from typing import Any
 
+from tocsin.cli.main import COMMANDS
 from tocsin.live.demo import run_demo, run_recording_demo
 from tocsin.sim import shipped_registry
 
@@ -15,7 +16,7 @@ from tocsin.sim import shipped_registry
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "demo",
-        help="the whole chain on one machine: broker, 40 simulated sites, service, an event",
+        help=COMMANDS["demo"][1],
         description=(
             "Start an embedded MQTT broker, 40 simulated site agents (the shipped invented "
             "network), and the service; inject a plane front (six to eight GPS-timed sites) "

@@ -20,6 +20,7 @@ from tocsin.alerts.external import ExternalRejected, parse_external
 from tocsin.alerts.followup_desk import FollowupDesk
 from tocsin.alerts.safexml import PacketRejected, XmlLimits
 from tocsin.cli.followup_plot import plot_followup
+from tocsin.cli.main import COMMANDS
 from tocsin.cli.progress import Progress, raw_position
 from tocsin.engine.targeted import TargetedResult
 from tocsin.io.hitring import HitRing
@@ -44,7 +45,7 @@ when nothing is significant. Writes OUT/followups.jsonl and the answer packet.
 def add_parser(sub: argparse._SubParsersAction[Any]) -> None:
     p = sub.add_parser(
         "followup",
-        help="search a recording around an outside alert packet",
+        help=COMMANDS["followup"][1],
         description=_DESCRIPTION,
     )
     p.add_argument("packet", type=Path, metavar="PACKET.xml", help="outside VOEvent 2.0 packet")

@@ -14,6 +14,7 @@ import orjson
 from tocsin.alerts.archive import Archive
 from tocsin.alerts.outbox import flush_directory
 from tocsin.alerts.policy import AlertDesk
+from tocsin.cli.main import COMMANDS
 from tocsin.cli.progress import Progress, raw_position
 from tocsin.engine.core import default_threads
 from tocsin.io.recording import Rejected, decode_line, open_text
@@ -30,7 +31,7 @@ MAX_REJECT_LINES_SHOWN = 20
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "replay",
-        help="run the trigger engine over a recording",
+        help=COMMANDS["replay"][1],
         description=(
             "Run the same trigger engine as the live service over a recording (one JSON hit "
             "batch per line, .gz allowed), as fast as it can. Writes DIR/candidates.jsonl, "

@@ -15,6 +15,7 @@ from tocsin.alerts.archive import Archive
 from tocsin.alerts.outbox import flush_directory
 from tocsin.alerts.policy import AlertDesk
 from tocsin.cli.alerts import ARCHIVE_NAME
+from tocsin.cli.main import COMMANDS
 from tocsin.errors import ConfigError
 from tocsin.model.service_config import load_service_config
 
@@ -22,7 +23,7 @@ from tocsin.model.service_config import load_service_config
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "retract",
-        help="withdraw an alert we sent (VOEvent retraction)",
+        help=COMMANDS["retract"][1],
         description=(
             "Archive a VOEvent retraction of IVORN (one of our alerts, or one of its updates) "
             "citing the original with cite='retraction' and carrying the reason. The running "

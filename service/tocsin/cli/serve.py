@@ -9,6 +9,7 @@ import signal
 from pathlib import Path
 from typing import Any
 
+from tocsin.cli.main import COMMANDS
 from tocsin.live import logs
 from tocsin.live.embedded_broker import embedded_broker
 from tocsin.live.logs import event
@@ -19,7 +20,7 @@ from tocsin.model.service_config import load_service_config
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "serve",
-        help="the always-on service: MQTT in, candidates out",
+        help=COMMANDS["serve"][1],
         description=(
             "Subscribe to every site's hit batches over MQTT, validate them, journal them, "
             "run the trigger engine (the same as `tocsin replay`) and write candidates to "

@@ -12,6 +12,7 @@ import math
 from pathlib import Path
 from typing import Any, Final
 
+from tocsin.cli.main import COMMANDS
 from tocsin.cli.progress import Progress
 from tocsin.gpstime import gps_ns_to_utc_iso, utc_to_gps_ns
 from tocsin.model.registry import SiteRegistry
@@ -42,7 +43,7 @@ def add_parser(sub: argparse._SubParsersAction[Any]) -> None:
     """Register ``simulate`` with the ``tocsin`` command's sub-parsers."""
     p = sub.add_parser(
         "simulate",
-        help="write a recording of an invented network, with a truth file",
+        help=COMMANDS["simulate"][1],
         description=_DESCRIPTION,
         epilog="injection syntax (--inject SPEC, repeatable):\n" + _indent(INJECT_SYNTAX),
         formatter_class=argparse.RawDescriptionHelpFormatter,

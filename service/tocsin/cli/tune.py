@@ -9,6 +9,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from tocsin.cli.main import COMMANDS
 from tocsin.cli.progress import Progress
 from tocsin.model.config import load_engine_config
 from tocsin.model.registry import SiteRegistry
@@ -31,7 +32,7 @@ exits with code 1.
 def add_parser(sub: Any) -> None:
     p = sub.add_parser(
         "tune",
-        help="time-slide background, injection efficiency and recommended thresholds",
+        help=COMMANDS["tune"][1],
         description=_DESCRIPTION,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
