@@ -320,3 +320,30 @@ def test_running_sums_equal_fresh_sums_bit_for_bit() -> None:
         assert running.expected.min() > 0.0
         calls += 1
     assert store.first_bin > origin and calls >= 5
+
+
+# ----------------------------------------------------------------------------- the bin ring
+
+
+def test_ring_reads_equal_the_written_bins_with_and_without_wrapping() -> None:
+    """Reads of every range held, contiguous in the ring or wrapped around its end,
+    return the bins as written (the first bins, overwritten, are no longer held),
+    and a read cannot write into the store."""
+    rng = np.random.default_rng(7)
+    n_sites, n_bins, capacity = 3, 50, 17
+    live = rng.integers(0, BIN_NS + 1, size=(n_sites, n_bins))
+    counts = np.where(live > 0, rng.integers(0, 5, size=(n_sites, n_bins)), 0)
+    b0 = BASE
+    store = fill_store(counts, live, b0, capacity=capacity)
+    assert store.first_bin == b0 + n_bins - capacity
+    wrapped = 0
+    for lo in range(store.first_bin, b0 + n_bins + 1):
+        for hi in range(lo, b0 + n_bins + 1):
+            got_c, got_l = store.counts(lo, hi), store.live_ns(lo, hi)
+            np.testing.assert_array_equal(got_c, counts[:, lo - b0 : hi - b0])
+            np.testing.assert_array_equal(got_l, live[:, lo - b0 : hi - b0])
+            assert not got_c.flags.writeable and not got_l.flags.writeable
+            wrapped += (lo % capacity) + (hi - lo) > capacity
+    assert wrapped > 0  # both kinds of read were made
+    with pytest.raises(IndexError, match="not all held"):
+        store.counts(store.first_bin - 1, store.first_bin + 1)

@@ -105,20 +105,28 @@ class BinStore:
             hi - lo,
         )
 
-    def _cols(self, b0: int, b1: int) -> np.ndarray:
+    def _read(self, ring: I64Array, b0: int, b1: int) -> I64Array:
+        """Bins ``[b0, b1)`` of ``ring``: a read-only view when they do not wrap around
+        the ring's end (no copy of up to an hour of bins), else a gathered copy."""
         if self.end_bin is None or b0 < self.first_bin or b1 > self.end_bin or b1 < b0:
             raise IndexError(
                 f"bins [{b0}, {b1}) are not all held (held: [{self.first_bin}, {self.end_bin}))"
             )
-        return np.arange(b0, b1) % self.capacity
+        c0 = b0 % self.capacity
+        if c0 + (b1 - b0) <= self.capacity:
+            out = ring[:, c0 : c0 + (b1 - b0)]
+        else:
+            out = ring[:, np.arange(b0, b1) % self.capacity]
+        out.flags.writeable = False
+        return out
 
     def counts(self, b0: int, b1: int) -> I64Array:
-        """Hit counts, shape (n_sites, b1 - b0), for bins ``[b0, b1)``."""
-        return self._counts[:, self._cols(b0, b1)]
+        """Hit counts, shape (n_sites, b1 - b0), for bins ``[b0, b1)`` (read only)."""
+        return self._read(self._counts, b0, b1)
 
     def live_ns(self, b0: int, b1: int) -> I64Array:
-        """Live nanoseconds, shape (n_sites, b1 - b0), for bins ``[b0, b1)``."""
-        return self._live[:, self._cols(b0, b1)]
+        """Live nanoseconds, shape (n_sites, b1 - b0), for bins ``[b0, b1)`` (read only)."""
+        return self._read(self._live, b0, b1)
 
     def state(self) -> dict[str, object]:
         """Everything needed to restore the store (for checkpoints)."""
