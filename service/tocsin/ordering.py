@@ -24,6 +24,7 @@ before it is final and goes to the engine as one :class:`Block`.
 
 from __future__ import annotations
 
+import operator
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -31,6 +32,10 @@ import numpy as np
 from tocsin.engine.block import Block
 from tocsin.model.batch import HitBatch
 from tocsin.types import GpsNs
+
+_SITE_INDEX = operator.attrgetter("site_index")
+_LIVE_START = operator.attrgetter("live_start")
+_LIVE_END = operator.attrgetter("live_end")
 
 SEQ_MEMORY = 1 << 16
 """How many recent sequence numbers per site are remembered for duplicate detection."""
@@ -166,37 +171,37 @@ class Orderer:
 
     def _release_to(self, w: GpsNs) -> Block | None:
         if self.watermark is None:
-            starts = [b.live_start for b in self._pending]
-            if not starts:
+            if not self._pending:
                 return None
-            self.watermark = min(starts)
+            self.watermark = min(b.live_start for b in self._pending)
         if w <= self.watermark:
             return None
         w0 = self.watermark
-        take: list[HitBatch] = []
-        keep: list[HitBatch] = []
-        for b in self._pending:
-            (take if b.live_start < w else keep).append(b)
-        ts, sizes, ls, lst, len_ = [], [], [], [], []
-        for b in take:
-            if b.live_end <= w:
-                t = b.t
-            else:
-                cut = int(np.searchsorted(b.t, w, side="left"))
-                t = b.t[:cut]
-                keep.append(
-                    HitBatch(b.site, b.site_index, b.seq, w, b.live_end, b.t[cut:], None, b.recv_ns)
-                )
-            ts.append(t)
-            sizes.append(t.size)
-            ls.append(b.site_index)
-            lst.append(max(b.live_start, w0))
-            len_.append(min(b.live_end, w))
+        pend = self._pending
+        n = len(pend)
+        starts = np.fromiter(map(_LIVE_START, pend), dtype=np.int64, count=n)
+        ends = np.fromiter(map(_LIVE_END, pend), dtype=np.int64, count=n)
+        taken = starts < w
+        take_idx = np.flatnonzero(taken)
+        # batches not begun by w stay pending, in arrival order; the rest of a batch
+        # that straddles w follows them
+        keep = [pend[i] for i in np.flatnonzero(~taken).tolist()]
+        take = [pend[i] for i in take_idx.tolist()]
+        ts = [b.t for b in take]
+        for k in np.flatnonzero(ends[take_idx] > w).tolist():
+            b = take[k]
+            cut = int(np.searchsorted(b.t, w, side="left"))
+            ts[k] = b.t[:cut]
+            keep.append(
+                HitBatch(b.site, b.site_index, b.seq, w, b.live_end, b.t[cut:], None, b.recv_ns)
+            )
+        ls = np.fromiter(map(_SITE_INDEX, take), dtype=np.int32, count=len(take))
         self._pending = keep
         self.watermark = w
         if ts:
             t_all = np.concatenate(ts)
-            s_all = np.repeat(np.asarray(ls, dtype=np.int32), sizes)
+            sizes = np.fromiter(map(len, ts), dtype=np.int64, count=len(ts))
+            s_all = np.repeat(ls, sizes)
             order = np.argsort(t_all, kind="stable")
             t_all, s_all = t_all[order], s_all[order]
         else:
@@ -207,7 +212,7 @@ class Orderer:
             w,
             t_all,
             s_all,
-            np.asarray(ls, dtype=np.int32),
-            np.asarray(lst, dtype=np.int64),
-            np.asarray(len_, dtype=np.int64),
+            ls,
+            np.maximum(starts[take_idx], w0),
+            np.minimum(ends[take_idx], w),
         )
