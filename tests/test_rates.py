@@ -328,7 +328,7 @@ def test_running_sums_equal_fresh_sums_bit_for_bit() -> None:
 def test_ring_reads_equal_the_written_bins_with_and_without_wrapping() -> None:
     """Reads of every range held, contiguous in the ring or wrapped around its end,
     return the bins as written (the first bins, overwritten, are no longer held),
-    and a read cannot write into the store."""
+    and a read cannot write into the store; totals over a range are their sums."""
     rng = np.random.default_rng(7)
     n_sites, n_bins, capacity = 3, 50, 17
     live = rng.integers(0, BIN_NS + 1, size=(n_sites, n_bins))
@@ -343,7 +343,11 @@ def test_ring_reads_equal_the_written_bins_with_and_without_wrapping() -> None:
             np.testing.assert_array_equal(got_c, counts[:, lo - b0 : hi - b0])
             np.testing.assert_array_equal(got_l, live[:, lo - b0 : hi - b0])
             assert not got_c.flags.writeable and not got_l.flags.writeable
+            n, live_ns = store.totals(lo, hi)
+            np.testing.assert_array_equal(n, counts[:, lo - b0 : hi - b0].sum(axis=1))
+            np.testing.assert_array_equal(live_ns, live[:, lo - b0 : hi - b0].sum(axis=1))
             wrapped += (lo % capacity) + (hi - lo) > capacity
     assert wrapped > 0  # both kinds of read were made
-    with pytest.raises(IndexError, match="not all held"):
-        store.counts(store.first_bin - 1, store.first_bin + 1)
+    for read in (store.counts, store.totals):
+        with pytest.raises(IndexError, match="not all held"):
+            read(store.first_bin - 1, store.first_bin + 1)

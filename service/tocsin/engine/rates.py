@@ -83,8 +83,8 @@ def background_rates(
     _check_lengths(background_bins, guard_bins, min_live_fraction)
     b1 = end_bin - guard_bins
     b0 = b1 - background_bins
-    n = store.counts(b0, b1).sum(axis=1)
-    live_s = store.live_ns(b0, b1).sum(axis=1) / NS_PER_S
+    n, live_ns = store.totals(b0, b1)
+    live_s = live_ns / NS_PER_S
     length_s = background_bins * store.bin_ns / NS_PER_S
     ok = (live_s > 0.0) & (live_s >= min_live_fraction * length_s)
     safe = np.where(ok, live_s, 1.0)
