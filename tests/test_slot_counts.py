@@ -150,3 +150,50 @@ def test_previous_hit_in_one_pass_equals_the_sorted_way(seed: int) -> None:
     shuffled = rng.permutation(t.size)  # out of time order: the sorting path
     ts, ss = t[shuffled], site[shuffled]
     assert previous_same_site(ts, ss).tolist() == sorted_way(ts, ss, None).tolist()
+
+
+def numpy_slot_tables(
+    lo: np.ndarray, hi: np.ndarray, occ: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """The tables built with numpy, rule by rule: a pair counts when its occupancy is
+    above 0 and its upper edge is not below its lower edge (else its upper edge is
+    -2**62); per seed site the highest lower edge, lowest upper edge and lowest lower
+    edge of its counted pairs, or (max, min, min) when it has none."""
+    n = lo.shape[0]
+    hi_c = np.where(occ > 0, hi, -(2**62)).astype(np.int64)
+    lo = lo.astype(np.int64)
+    counted = hi_c >= lo
+    big, small = np.iinfo(np.int64).max, np.iinfo(np.int64).min
+    rows = np.stack(
+        [
+            np.where(counted, lo, small).max(axis=1, initial=small),
+            np.where(counted, hi_c, big).min(axis=1, initial=big),
+            np.where(counted, lo, big).min(axis=1, initial=big),
+        ],
+        axis=1,
+    )
+    rows[~counted.any(axis=1)] = (big, small, small)
+    edges = np.stack([lo.ravel(), hi_c.ravel()], axis=1)
+    return edges, counted.ravel(), counted.any(axis=0), rows
+
+
+@pytest.mark.parametrize("hi_dtype", [np.int64, np.float64])
+def test_compiled_tables_equal_the_numpy_rules(hi_dtype: type) -> None:
+    rng = np.random.default_rng(11)
+    n = 40
+    lo = -rng.integers(0, 500, (n, n)).astype(np.int64)
+    hi = rng.integers(-600, 40_000, (n, n)).astype(hi_dtype)  # some below lo
+    occ = np.where(rng.random((n, n)) < 0.2, 0.0, rng.random((n, n)))
+    occ[3, :] = 0.0  # seed site 3 counts nobody
+    occ[:, 7] = 0.0  # site 7 counts for nobody
+    np.fill_diagonal(occ, 0.0)
+    tab = slot_tables(lo.ravel(), hi.ravel(), n, occupancy=occ.ravel())
+    edges, counted, as_nb, rows = numpy_slot_tables(lo, hi, occ)
+    np.testing.assert_array_equal(tab.edges, edges)
+    np.testing.assert_array_equal(tab.counted, counted)
+    np.testing.assert_array_equal(tab.as_neighbour, as_nb)
+    np.testing.assert_array_equal(tab.rows, rows)
+    assert not tab.as_neighbour[7] and tuple(tab.rows[3]) == (2**63 - 1, -(2**63), -(2**63))
+    # without occupancies every pair with hi >= lo counts
+    plain = slot_tables(lo.ravel(), hi.ravel(), n)
+    np.testing.assert_array_equal(plain.counted, (hi >= lo).ravel())

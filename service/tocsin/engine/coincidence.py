@@ -376,8 +376,9 @@ class CoincidenceTrigger:
             tail_gt, point = _null_tables(q, active, e)
             slots = None  # nothing is evaluated at this scale
             if active.any():
-                hi_counted = np.where(q > 0, self.geom.hi[k], NO_PREVIOUS_NS).astype(np.int64)
-                slots = slot_tables(self.geom.lo_flat_i, hi_counted.reshape(-1), n)
+                slots = slot_tables(
+                    self.geom.lo_flat_i, self.geom.hi_flat[k], n, occupancy=q.reshape(-1)
+                )
             scales.append(ScaleTables(active, tail_gt, point, slots))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)

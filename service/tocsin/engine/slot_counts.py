@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from tocsin.engine.jit import kernel
-from tocsin.types import BoolArray, I32Array, I64Array
+from tocsin.types import BoolArray, F64Array, I32Array, I64Array
 
 
 @dataclass(frozen=True, slots=True)
@@ -43,28 +43,68 @@ class SlotTables:
     its pair (sentinels make that test fail for a row with no counted pair)."""
 
 
-def slot_tables(lo_flat: I64Array, hi_flat: I64Array, n_sites: int) -> SlotTables:
+def slot_tables(
+    lo_flat: I64Array,
+    hi_flat: I64Array | F64Array,
+    n_sites: int,
+    occupancy: F64Array | None = None,
+) -> SlotTables:
     """:class:`SlotTables` from flat (N * N,) lower and upper slot edges (ns); a pair
-    whose upper edge is below its lower edge does not count."""
-    edges = np.ascontiguousarray(np.stack([lo_flat, hi_flat], axis=1), dtype=np.int64)
-    counted = hi_flat >= lo_flat
-    lo2 = lo_flat.reshape(n_sites, n_sites)
-    hi2 = hi_flat.reshape(n_sites, n_sites)
-    c2 = counted.reshape(n_sites, n_sites)
-    big, small = np.iinfo(np.int64).max, np.iinfo(np.int64).min
-    rows = np.stack(
-        [
-            np.where(c2, lo2, small).max(axis=1, initial=small),
-            np.where(c2, hi2, big).min(axis=1, initial=big),
-            np.where(c2, lo2, big).min(axis=1, initial=big),
-        ],
-        axis=1,
+    whose upper edge is below its lower edge does not count. With ``occupancy``
+    (N * N,), a pair whose occupancy is not above 0 does not count either (its upper
+    edge becomes ``NO_EDGE_NS``). Upper edges given as floats must hold integers.
+
+    One compiled pass over the N * N pairs (for 1000 sites, numpy's way took ~45 ms
+    a scale, twice a minute of data)."""
+    if occupancy is None:
+        occupancy = np.ones(lo_flat.size)
+    edges, counted, as_neighbour, rows = _build_slot_tables(
+        lo_flat, hi_flat, occupancy, n_sites, NO_EDGE_NS
     )
-    none = ~c2.any(axis=1)
-    rows[none] = (big, small, small)
-    return SlotTables(
-        edges, np.ascontiguousarray(counted), np.asarray(c2.any(axis=0)), np.ascontiguousarray(rows)
-    )
+    return SlotTables(edges, counted, as_neighbour, rows)
+
+
+NO_EDGE_NS = -(2**62)
+"""Upper edge (ns) of a pair that does not count: below every lower edge."""
+
+
+@kernel
+def _build_slot_tables(
+    lo: I64Array, hi: I64Array | F64Array, occ: F64Array, n: int, no_edge: int
+) -> tuple[I64Array, BoolArray, BoolArray, I64Array]:
+    """Edges (N * N, 2), counted (N * N,), as-neighbour (N,) and row bounds (N, 3) of
+    :class:`SlotTables`, in one pass."""
+    big = np.int64(2**63 - 1)
+    small = np.int64(-(2**63))
+    edges = np.empty((n * n, 2), dtype=np.int64)
+    counted = np.empty(n * n, dtype=np.bool_)
+    as_neighbour = np.zeros(n, dtype=np.bool_)
+    rows = np.empty((n, 3), dtype=np.int64)
+    for s in range(n):
+        hi_lo, lo_hi, lo_lo = small, big, big
+        row_counts = False
+        for site in range(n):
+            k = s * n + site
+            lo_k = np.int64(lo[k])
+            hi_k = np.int64(hi[k]) if occ[k] > 0.0 else np.int64(no_edge)
+            edges[k, 0] = lo_k
+            edges[k, 1] = hi_k
+            c = hi_k >= lo_k
+            counted[k] = c
+            if c:
+                row_counts = True
+                as_neighbour[site] = True
+                if lo_k > hi_lo:
+                    hi_lo = lo_k
+                if hi_k < lo_hi:
+                    lo_hi = hi_k
+                if lo_k < lo_lo:
+                    lo_lo = lo_k
+        if row_counts:
+            rows[s, 0], rows[s, 1], rows[s, 2] = hi_lo, lo_hi, lo_lo
+        else:  # sentinels that make the row test fail
+            rows[s, 0], rows[s, 1], rows[s, 2] = big, small, small
+    return edges, counted, as_neighbour, rows
 
 
 @kernel
