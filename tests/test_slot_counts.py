@@ -159,7 +159,6 @@ def numpy_slot_tables(
     above 0 and its upper edge is not below its lower edge (else its upper edge is
     -2**62); per seed site the highest lower edge, lowest upper edge and lowest lower
     edge of its counted pairs, or (max, min, min) when it has none."""
-    n = lo.shape[0]
     hi_c = np.where(occ > 0, hi, -(2**62)).astype(np.int64)
     lo = lo.astype(np.int64)
     counted = hi_c >= lo
