@@ -103,11 +103,39 @@ def test_rate_limit_holds_a_storm_and_refills_with_event_time(tmp_path: Path) ->
 
 def test_public_bucket_not_starved_by_internal_storm(tmp_path: Path) -> None:
     desk = _desk(tmp_path, config(burst=2, max_per_hour=1.0))
-    for k in range(2):
-        desk.consider(excess_candidate(far=100.0, t_ns=T0 + k * NS_PER_S))
-    pub = desk.consider(front_candidate(far=0.1, t_ns=T0 + 5 * NS_PER_S))
-    # the internal bucket is empty: the storm limit applies to everything (documented)
-    assert pub is not None and pub.status == "held"
+    storm = [desk.consider(excess_candidate(far=100.0, t_ns=T0 + k * NS_PER_S)) for k in range(4)]
+    assert [r.status for r in storm if r is not None] == ["queued"] * 2 + ["held"] * 2
+    # the internal bucket is empty; a public alert is limited by its own bucket only
+    pubs = [
+        desk.consider(front_candidate(far=0.1, t_ns=T0 + (5 + k) * NS_PER_S, cid=f"f{k}"))
+        for k in range(3)
+    ]
+    assert [r.status for r in pubs if r is not None] == ["queued", "queued", "held"]
+    queued = next(r for r in pubs if r is not None)
+    assert {d.sink for d in desk.archive.deliveries(queued.ivorn)} >= {"dir", "vtp:obs-a"}
+    # internal alerts stay held: the public ones did not refill their bucket
+    r = desk.consider(excess_candidate(far=100.0, t_ns=T0 + 9 * NS_PER_S))
+    assert r is not None and r.status == "held"
+    desk.archive.close()
+    # a restart rebuilds both buckets from the archive with the same takes: both empty
+    again = _desk(tmp_path, config(burst=2, max_per_hour=1.0))
+    r = again.consider(excess_candidate(far=100.0, t_ns=T0 + 10 * NS_PER_S))
+    assert r is not None and r.status == "held"
+    r = again.consider(front_candidate(far=0.1, t_ns=T0 + 11 * NS_PER_S, cid="f9"))
+    assert r is not None and r.status == "held"
+
+
+def test_public_alerts_count_in_the_internal_bucket(tmp_path: Path) -> None:
+    """Public alerts reach our own sinks too, so they take internal tokens while any
+    are left (and internal alerts then wait), but are never held for want of one."""
+    desk = _desk(tmp_path, config(burst=2, max_per_hour=1.0))
+    pubs = [
+        desk.consider(front_candidate(far=0.1, t_ns=T0 + k * NS_PER_S, cid=f"f{k}"))
+        for k in range(2)
+    ]
+    assert [r.status for r in pubs if r is not None] == ["queued", "queued"]
+    r = desk.consider(excess_candidate(far=100.0, t_ns=T0 + 3 * NS_PER_S))
+    assert r is not None and r.status == "held"
 
 
 def test_archive_refuses_to_mix_roles(tmp_path: Path) -> None:

@@ -13,8 +13,11 @@ Pure and synchronous (the service, replay and the ``retract`` command share it):
   the same IVORN for the same candidate, and a restart never renumbers.
 * Rate limit: a token bucket per level (``burst`` tokens, refilled at ``max_per_hour``
   per hour of *event* time, so replay decides exactly as live did). An alert that finds
-  the bucket empty is archived as ``held``: recorded, never sent. Retractions are never
-  held.
+  its level's bucket empty is archived as ``held``: recorded, never sent. A public
+  alert is held only by the public bucket: a storm of internal alerts (a noisy site,
+  thresholds set low for a trial) cannot hold back the one alert that observatories
+  need; it still takes an internal token when one is left, so the internal bucket
+  counts all the traffic of our own sinks. Retractions are never held.
 """
 
 from __future__ import annotations
@@ -135,9 +138,7 @@ class AlertDesk:
                 _hit_keys(obj.get("sites"), obj.get("hit_times_ns")),
             )
         for t, level in self.archive.recent_sent(since):
-            self.buckets["internal"].take(t)
-            if level == "public":
-                self.buckets["public"].take(t)
+            self._take(level, t)  # the same takes as when it was sent
 
     # -- sinks -----------------------------------------------------------------
     def sinks_for(self, level: str) -> list[str]:
@@ -262,10 +263,15 @@ class AlertDesk:
                 self._by_hit.pop(k, None)
 
     def _take(self, level: str, t_ns: int) -> bool:
-        ok = self.buckets["internal"].take(t_ns)
-        if ok and level == "public":
-            ok = self.buckets["public"].take(t_ns)
-        return ok
+        """Whether an alert of ``level`` at event time ``t_ns`` may be sent (taking its
+        tokens): internal ones from the internal bucket; public ones from the public
+        bucket alone, and then an internal token too if one is left."""
+        if level != "public":
+            return self.buckets["internal"].take(t_ns)
+        if not self.buckets["public"].take(t_ns):
+            return False
+        self.buckets["internal"].take(t_ns)  # counted there too; never holds it back
+        return True
 
     def _skymap(self, cand: Candidate, ivorn: str) -> tuple[str | None, str | None]:
         if not self.cfg.skymaps or cand.ra_deg is None or cand.dec_deg is None:
