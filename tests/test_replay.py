@@ -104,6 +104,35 @@ def test_demo_replay_finds_the_injected_front(tmp_path: Path) -> None:
             assert key in c
 
 
+def test_a_journal_directory_replays_as_its_segments_in_a_row(tmp_path: Path) -> None:
+    """The service's journal (segment files in arrival order) replays like the one
+    recording they make up; a torn last line (the service died mid-write, the batch
+    was never acknowledged) is left out, not reported as bad."""
+    lines = _lines()
+    cut = len(lines) // 3
+    journal = tmp_path / "journal"
+    journal.mkdir()
+    first, second = lines[:cut], lines[cut:]
+    (journal / f"journal-{1:020d}.jsonl").write_bytes(b"\n".join(first) + b"\n")
+    (journal / f"journal-{2:020d}.jsonl").write_bytes(
+        b"\n".join(second) + b"\n" + second[-1][:40]  # torn
+    )
+    (journal / "notes.txt").write_text("not a segment")
+    runs = {}
+    for name, src in (("file", REC), ("journal", journal)):
+        out = tmp_path / name
+        assert main(["replay", str(src), "--sites", str(SITES), "--out", str(out), "--quiet"]) == 0
+        summary = json.loads((out / "summary.json").read_text())
+        for k in ("wall_s", "hits_per_s"):
+            summary.pop(k)
+        runs[name] = ((out / "candidates.jsonl").read_bytes(), summary)
+    assert runs["journal"] == runs["file"]
+    assert runs["file"][0]  # the shipped front, so there is something to compare
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert main(["replay", str(empty), "--sites", str(SITES), "--out", str(tmp_path / "e")]) == 2
+
+
 @pytest.mark.parametrize(
     ("argv", "needle"),
     [

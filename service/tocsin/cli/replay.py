@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 import time
 from collections import Counter
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -17,6 +19,9 @@ from tocsin.alerts.policy import AlertDesk
 from tocsin.cli.main import COMMANDS
 from tocsin.cli.progress import Progress, raw_position
 from tocsin.engine.core import default_threads
+from tocsin.io.journal import PREFIX as JOURNAL_PREFIX
+from tocsin.io.journal import SUFFIX as JOURNAL_SUFFIX
+from tocsin.io.journal import read_from, segments
 from tocsin.io.recording import Rejected, decode_line, open_text
 from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
@@ -41,7 +46,12 @@ def add_parser(sub: Any) -> None:
             "config's [alerts] table, role 'test' by default). Prints a summary table."
         ),
     )
-    p.add_argument("recording", type=Path, help="recording file (.jsonl or .jsonl.gz)")
+    p.add_argument(
+        "recording",
+        type=Path,
+        help="recording file (.jsonl or .jsonl.gz), or the service's journal directory "
+        "(DATA_DIR/journal: its segments in order)",
+    )
     p.add_argument("--sites", type=Path, required=True, help="site registry (TOML)")
     p.add_argument(
         "--config",
@@ -67,8 +77,19 @@ def add_parser(sub: Any) -> None:
 def run(args: argparse.Namespace) -> int:
     if args.candidate_far is not None and not args.candidate_far > 0:
         raise ValueError(f"--candidate-far {args.candidate_far!r} must be a positive rate per year")
-    if not args.recording.is_file():
-        raise FileNotFoundError(f"recording {str(args.recording)!r} does not exist")
+    source: Path = args.recording
+    if source.is_dir():
+        segs = segments(source)
+        if not segs:
+            raise FileNotFoundError(
+                f"{str(source)!r} is a directory without journal segments "
+                f"({JOURNAL_PREFIX}*{JOURNAL_SUFFIX})"
+            )
+        size = sum(seg.stat().st_size for seg in segs)
+    elif source.is_file():
+        size = source.stat().st_size
+    else:
+        raise FileNotFoundError(f"recording {str(source)!r} does not exist")
     registry = SiteRegistry.from_toml(args.sites)
     cfg = load_engine_config(args.config)
     alert_cfg = load_alert_config(args.config)
@@ -92,13 +113,20 @@ def run(args: argparse.Namespace) -> int:
     latest: dict[str, Candidate] = {}
     n_lines = 0
     t0 = time.perf_counter()
-    progress = Progress(args.recording.stat().st_size, enabled=not args.quiet, label="replay")
+    progress = Progress(size, enabled=not args.quiet, label="replay")
     shown = 0
     with (
         open(out / "candidates.jsonl", "wb") as cand_fh,
         open(out / "rejected.jsonl", "wb") as rej_fh,
-        open_text(args.recording, "rb") as fh,
+        contextlib.ExitStack() as stack,
     ):
+        raw_lines: Iterable[bytes]
+        position: Callable[[], int]
+        if source.is_dir():
+            raw_lines, position = _journal_lines(source)
+        else:
+            fh = stack.enter_context(open_text(source, "rb"))
+            raw_lines, position = fh, lambda: raw_position(fh)
 
         def emit(cands: list[Candidate]) -> None:
             for c in cands:
@@ -107,7 +135,7 @@ def run(args: argparse.Namespace) -> int:
                 if desk.consider(c) is not None:
                     flush_directory(archive, out / "alerts")
 
-        for k, raw in enumerate(fh, start=1):
+        for k, raw in enumerate(raw_lines, start=1):
             line = raw.strip()
             if not line:
                 continue
@@ -123,7 +151,7 @@ def run(args: argparse.Namespace) -> int:
                     shown += 1
             emit(pipe.offer(item))
             if k % 2000 == 0:
-                progress.update(raw_position(fh))
+                progress.update(position())
         emit(pipe.finish())
     progress.done()
     wall = time.perf_counter() - t0
@@ -135,6 +163,20 @@ def run(args: argparse.Namespace) -> int:
     (out / "summary.json").write_bytes(orjson.dumps(summary, option=orjson.OPT_INDENT_2))
     print(_table(summary))
     return 0
+
+
+def _journal_lines(directory: Path) -> tuple[Iterator[bytes], Callable[[], int]]:
+    """The lines of a journal directory, oldest segment first (a torn last line is
+    left out, as the service does), and a function giving the bytes read so far."""
+    done = 0
+
+    def lines() -> Iterator[bytes]:
+        nonlocal done
+        for line in read_from(directory, None):
+            done += len(line) + 1
+            yield line
+
+    return lines(), lambda: done
 
 
 def _rej_obj(r: Rejected) -> dict[str, Any]:
