@@ -194,5 +194,6 @@ def warm_up() -> None:
     process costs ~0.7 s even from numba's cache."""
     one = np.zeros(1, dtype=np.int64)
     tab = slot_tables(one, one, 1)
+    slot_tables(one, np.zeros(1), 1, occupancy=np.ones(1))  # as the engine calls it
     slot_counts(one, one, one, one, one, tab.edges, tab.counted, tab.rows, 1, 0, 0, one)
     previous_in_time_order(one, np.zeros(1, dtype=np.int32), one.copy())
