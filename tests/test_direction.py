@@ -14,14 +14,16 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 from astropy import units as u
-from astropy.coordinates import TETE, AltAz, EarthLocation, SkyCoord
+from astropy.coordinates import ITRS, TETE, AltAz, CartesianRepresentation, EarthLocation, SkyCoord
 from astropy.time import Time
 from scipy import integrate, special, stats
 
 from tocsin.engine.direction import (
     FrontFit,
+    error_ellipse,
     fit_front,
     front_radec,
+    position_angle_deg,
     seed_baselines,
     solve_triples,
 )
@@ -476,3 +478,54 @@ def test_fit_noise_free_recovers_direction_and_t0() -> None:
     # starting from a guess gives the same answer
     again = fit_front(POS, _hits(n_true, t0, POS, SIGMA, None), SIGMA, guess=-n_true)
     assert again is not None and float(np.linalg.norm(again.n - fit.n)) < 1e-9
+
+
+# --------------------------------------------------------------------------- error ellipse
+
+
+def test_position_angle_matches_astropy() -> None:
+    """Source: astropy's SkyCoord.position_angle (east of north)."""
+    rng = np.random.default_rng(3)
+    for _ in range(50):
+        ra0, ra1 = rng.uniform(0, 360, 2)
+        dec0, dec1 = rng.uniform(-89, 89, 2)
+        ref = SkyCoord(ra0 * u.deg, dec0 * u.deg).position_angle(
+            SkyCoord(ra1 * u.deg, dec1 * u.deg)
+        )
+        got = position_angle_deg(ra0, dec0, ra1, dec1)
+        diff = (got - ref.deg + 180.0) % 360.0 - 180.0
+        assert abs(diff) < 1e-9
+
+
+def test_error_ellipse_matches_the_scatter_of_sampled_directions() -> None:
+    """Three far-apart sites and a fourth near their line give an elongated ellipse.
+    Directions drawn from the fit's covariance (in its tangent basis), carried into
+    ICRS by astropy and measured with SkyCoord.spherical_offsets_to (east, north),
+    scatter with the ellipse's semi-axes and position angle."""
+    idx = [0, 3, 5, 2]  # Iberia, Scandinavia, Greece, Germany
+    n = _unit(np.array([0.3, -0.5, 0.8]))
+    t = _hits(n, T_BASE, POS[idx], SIGMA[idx], None)
+    fit = fit_front(POS[idx], t, SIGMA[idx])
+    assert fit is not None
+    ell = error_ellipse(fit)
+    vals = np.linalg.eigvalsh(fit.cov_rad2)
+    assert ell.major_deg == pytest.approx(math.degrees(math.sqrt(vals[1])), rel=1e-12)
+    assert ell.minor_deg == pytest.approx(math.degrees(math.sqrt(vals[0])), rel=1e-12)
+    assert ell.major_deg > 1.5 * ell.minor_deg  # elongated, or the check says little
+    assert fit.err_deg == pytest.approx(math.sqrt(ell.major_deg * ell.minor_deg), rel=1e-9)
+    rng = np.random.default_rng(8)
+    draws = rng.multivariate_normal(np.zeros(2), fit.cov_rad2, size=3000)
+    vecs = _unit(fit.n + draws @ fit.tangent_basis)
+    ra0, dec0 = front_radec(fit)
+    obstime = Time(fit.t0_ns / 1e9, format="gps")
+    itrs = ITRS(CartesianRepresentation(vecs.T, unit=u.one), obstime=obstime)
+    icrs = SkyCoord(itrs).transform_to("icrs")
+    centre = SkyCoord(ra0 * u.deg, dec0 * u.deg, frame="icrs")
+    east, north = centre.spherical_offsets_to(SkyCoord(icrs.ra, icrs.dec, frame="icrs"))
+    off = np.stack([east.deg, north.deg])
+    s_vals, s_vecs = np.linalg.eigh(np.cov(off))
+    assert math.sqrt(s_vals[1]) == pytest.approx(ell.major_deg, rel=0.06)
+    assert math.sqrt(s_vals[0]) == pytest.approx(ell.minor_deg, rel=0.06)
+    pa_mc = math.degrees(math.atan2(s_vecs[0, 1], s_vecs[1, 1])) % 180.0
+    diff = (pa_mc - ell.pa_deg + 90.0) % 180.0 - 90.0
+    assert abs(diff) < 3.0

@@ -26,7 +26,7 @@ from tocsin.engine.coincidence import (
     concat_results,
     previous_same_site,
 )
-from tocsin.engine.direction import fit_front, front_radec
+from tocsin.engine.direction import error_ellipse, fit_front, front_radec
 from tocsin.engine.excess import ExcessTrigger
 from tocsin.engine.exposure import BinStore
 from tocsin.engine.front import FrontSearch
@@ -383,6 +383,8 @@ class Engine:
             return
         ra, dec = front_radec(fit)
         cand.ra_deg, cand.dec_deg, cand.err_deg = ra, dec, float(fit.err_deg)
+        ell = error_ellipse(fit)
+        cand.details["err_ellipse_deg"] = [ell.major_deg, ell.minor_deg, ell.pa_deg]
         cand.details["front_chi2"] = float(fit.chi2)
         cand.details["front_ndof"] = int(fit.ndof)
         cand.details["front_t0_gps_ns"] = int(fit.t0_ns)

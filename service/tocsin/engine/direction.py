@@ -550,3 +550,48 @@ def fit_front(
 def front_radec(fit: FrontFit) -> tuple[float, float]:
     """ICRS (RA, Dec) in degrees of a fitted front's source direction at its time ``t0_ns``."""
     return ecef_unit_to_radec(fit.n, fit.t0_ns)
+
+
+ELLIPSE_STEP_RAD = 1.0e-3
+"""Step (rad) along the major axis by which its position angle is carried into ICRS."""
+
+
+@dataclass(frozen=True, slots=True)
+class ErrorEllipse:
+    """The 1σ error ellipse of a fitted direction on the sky (ICRS).
+
+    ``major_deg`` >= ``minor_deg``: the semi-axes, the square roots of the
+    eigenvalues of the direction's covariance (deg). ``pa_deg`` in [0, 180): the
+    position angle of the major axis, from north through east, as astronomers
+    measure it (the ambiguity of 180 deg is the ellipse's own symmetry). The
+    probability within the ellipse scaled by ``k`` is ``1 - exp(-k**2 / 2)``
+    (39.3 % for ``k = 1``), where a circle of radius ``err_deg`` (the geometric
+    mean of the semi-axes) holds less along the major axis.
+    """
+
+    major_deg: float
+    minor_deg: float
+    pa_deg: float
+
+
+def error_ellipse(fit: FrontFit) -> ErrorEllipse:
+    """The fit's 1σ error ellipse: semi-axes from ``cov_rad2``; the position angle
+    from carrying a point a small step along the major axis (ECEF, at ``t0_ns``)
+    into ICRS with the same transformation as the direction (so the rotation of
+    the Earth, precession and nutation between the two frames are included)."""
+    vals, vecs = np.linalg.eigh(fit.cov_rad2)  # ascending
+    minor, major = (float(np.degrees(np.sqrt(max(v, 0.0)))) for v in vals)
+    axis = fit.tangent_basis.T @ vecs[:, 1]  # ECEF unit vector along the major axis
+    ra0, dec0 = front_radec(fit)
+    ra1, dec1 = ecef_unit_to_radec(fit.n + ELLIPSE_STEP_RAD * axis, fit.t0_ns)
+    return ErrorEllipse(major, minor, position_angle_deg(ra0, dec0, ra1, dec1) % 180.0)
+
+
+def position_angle_deg(ra0: float, dec0: float, ra1: float, dec1: float) -> float:
+    """Position angle (deg, from north through east, in [0, 360)) of the point
+    (``ra1``, ``dec1``) seen from (``ra0``, ``dec0``), all in degrees."""
+    a0, d0, a1, d1 = (math.radians(x) for x in (ra0, dec0, ra1, dec1))
+    da = a1 - a0
+    y = math.sin(da) * math.cos(d1)
+    x = math.cos(d0) * math.sin(d1) - math.sin(d0) * math.cos(d1) * math.cos(da)
+    return math.degrees(math.atan2(y, x)) % 360.0
