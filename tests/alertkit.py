@@ -34,7 +34,12 @@ def front_candidate(
         ra_deg=149.99987774621263,
         dec_deg=35.000071900310026,
         err_deg=7.919361200686146e-05,
-        details={"front_t0_gps_ns": int(t_ns), "front_t0_sigma_ns": 16.8},
+        details={
+            "front_t0_gps_ns": int(t_ns),
+            "front_t0_sigma_ns": 16.8,
+            # semi-axes whose geometric mean is err_deg, position angle (deg)
+            "err_ellipse_deg": [1.0519500614582204e-04, 5.961906760098045e-05, 131.3476],
+        },
         revision=revision,
         id=cid,
     )

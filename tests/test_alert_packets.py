@@ -45,6 +45,10 @@ def test_front_alert_round_trip_is_exact() -> None:
     assert p.params["false_alarm_rate"] == repr(c.far_per_year)
     assert p.params["multiplicity"] == "6"
     assert p.params["trigger_kind"] == "coincidence/front"
+    major, minor, pa = c.details["err_ellipse_deg"]
+    assert p.params["err_ellipse_major"] == repr(major)
+    assert p.params["err_ellipse_minor"] == repr(minor)
+    assert p.params["err_ellipse_pa"] == repr(pa)
     doc = etree.fromstring(xml)
     iso = doc.findtext(".//ISOTime")
     assert iso == "2026-03-14T00:03:00.000000003"  # sub-microsecond digits kept
@@ -55,6 +59,7 @@ def test_front_alert_round_trip_is_exact() -> None:
     desc = doc.findtext("Description")
     assert desc.startswith("TEST ALERT")
     assert "False alarm rate 0.05 per year" in desc
+    assert "1-sigma error ellipse, 0.00011 x 6e-05 deg at position angle 131 deg" in desc
     assert "Plane-front coincidence" in doc.findtext("How/Description")
 
 

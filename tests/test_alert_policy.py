@@ -7,6 +7,7 @@ import sqlite3
 from pathlib import Path
 
 import pytest
+from astropy.io import fits
 
 from tests.alertkit import T0, config, excess_candidate, front_candidate
 from tocsin.alerts.archive import Archive
@@ -38,6 +39,10 @@ def test_thresholds_choose_level_and_sinks(tmp_path: Path) -> None:
     sinks = {d.sink for d in desk.archive.deliveries(public.ivorn)}
     assert sinks == {"dir", "mqtt", "vtp:obs-a"}
     assert public.skymap is not None and Path(public.skymap).is_file()
+    with fits.open(public.skymap) as hdul:  # the map follows the error ellipse
+        h = hdul[1].header
+        got = [h["ERR_MAJ"], h["ERR_MIN"], h["ERR_PA"]]
+    assert got == pytest.approx(front_candidate().details["err_ellipse_deg"], rel=1e-12)
     assert read_alert(public.xml).ivorn == public.ivorn
     assert flush_directory(desk.archive, tmp_path / "packets") == 2
     assert flush_directory(desk.archive, tmp_path / "packets") == 0

@@ -368,7 +368,30 @@ def _what(v: Any, cand: Candidate, meta: AlertMeta) -> None:
             desc="earliest hit of the candidate, GPS nanoseconds",
         )
     )
+    ell = error_ellipse_of(cand)
+    if ell is not None:
+        for name, value, ucd, desc in (
+            ("err_ellipse_major", ell[0], "pos.errorEllipse", "1-sigma semi-major axis"),
+            ("err_ellipse_minor", ell[1], "pos.errorEllipse", "1-sigma semi-minor axis"),
+            (
+                "err_ellipse_pa",
+                ell[2],
+                "pos.posAng",
+                "position angle of the major axis, north through east (ICRS)",
+            ),
+        ):
+            w.append(_p(name, _f(value), dtype="float", unit="deg", ucd=ucd, desc=desc))
     w.append(_p("method_version", METHOD_VERSION, ucd="meta.version"))
+
+
+def error_ellipse_of(cand: Candidate) -> tuple[float, float, float] | None:
+    """(semi-major, semi-minor, position angle) in degrees of a candidate's fitted
+    direction, when it has one (``details['err_ellipse_deg']``), else None."""
+    raw = cand.details.get("err_ellipse_deg")
+    if cand.ra_deg is None or not isinstance(raw, list | tuple) or len(raw) != 3:
+        return None
+    a, b, pa = (float(x) for x in raw)
+    return (a, b, pa) if all(math.isfinite(x) for x in (a, b, pa)) and 0 < b <= a else None
 
 
 def _where_when(v: Any, cand: Candidate) -> None:
@@ -449,7 +472,17 @@ def _summary(cand: Candidate, meta: AlertMeta, cfg: AlertConfig) -> str:
     if cand.ra_deg is not None and cand.dec_deg is not None and cand.err_deg is not None:
         direction = (
             f" Fitted arrival direction RA {cand.ra_deg:.4f} deg, Dec {cand.dec_deg:.4f} deg "
-            f"(ICRS), 1-sigma error radius {cand.err_deg:.2g} deg."
+            f"(ICRS), 1-sigma error radius {cand.err_deg:.2g} deg"
+        )
+        ell = error_ellipse_of(cand)
+        direction += (
+            "."
+            if ell is None
+            else (
+                f" (the radius of the circle of the same area as the 1-sigma error ellipse, "
+                f"{ell[0]:.2g} x {ell[1]:.2g} deg at position angle {ell[2]:.0f} deg: use the "
+                "ellipse, or the map, which follows it)."
+            )
         )
     upd = f" Update superseding {meta.cites}: {meta.note}" if meta.kind == "update" else ""
     return (

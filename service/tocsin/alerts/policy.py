@@ -36,6 +36,7 @@ from tocsin.alerts.packet import (
     Level,
     build_alert,
     build_retraction,
+    error_ellipse_of,
     event_time,
     local_id,
 )
@@ -286,6 +287,7 @@ class AlertDesk:
             cand.err_deg,
             object_id=ivorn,
             date_obs=gps_ns_to_utc_iso(cand.time_gps_ns),
+            ellipse=error_ellipse_of(cand),
         )
         base = self.cfg.skymap_url_base
         uri = f"{base.rstrip('/')}/{name}" if base else path.resolve().as_uri()
