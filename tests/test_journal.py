@@ -4,7 +4,14 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from tocsin.io.journal import Journal, Position, read_from
+import pytest
+from pydantic import ValidationError
+
+from tocsin.io.journal import Journal, Position, prune, read_from
+from tocsin.live.service import Service
+from tocsin.model.registry import SiteRegistry
+from tocsin.model.service_config import MetricsConfig, ServiceConfig
+from tocsin.types import NS_PER_S
 
 
 def test_positions_segments_and_torn_lines(tmp_path: Path) -> None:
@@ -32,3 +39,57 @@ def test_positions_segments_and_torn_lines(tmp_path: Path) -> None:
     tail = list(read_from(tmp_path, positions[98]))
     assert tail[0].startswith(b'{"k": 99,') and tail[-1] == b'{"k": 101}'
     assert not any(b"torn" in x for x in tail)
+
+
+def _segment(directory: Path, first_recv: int) -> Path:
+    path = directory / f"journal-{first_recv:020d}.jsonl"
+    path.write_bytes(b'{"recv": %d}\n' % first_recv)
+    return path
+
+
+def test_prune_deletes_only_whole_segments_before_the_cutoff(tmp_path: Path) -> None:
+    segs = [_segment(tmp_path, r) for r in (100, 200, 300, 400, 500)]
+    # a segment ends where the next begins: 100-200 and 200-300 end by 300
+    gone = prune(tmp_path, before_ns=320, keep=None)
+    assert gone == segs[:2]
+    assert [p.exists() for p in segs] == [False, False, True, True, True]
+    # never the segment a checkpoint points into, nor any after it
+    assert prune(tmp_path, before_ns=10**6, keep=Position(segs[3].name, 5)) == [segs[2]]
+    # never the newest (being written), however old
+    assert prune(tmp_path, before_ns=10**6, keep=None) == [segs[3]]
+    assert [p.name for p in sorted(tmp_path.glob("journal-*"))] == [segs[4].name]
+    assert list(read_from(tmp_path, None)) == [b'{"recv": 500}']
+
+
+def test_service_deletes_old_segments_after_a_checkpoint(
+    tmp_path: Path, small_registry: SiteRegistry
+) -> None:
+    """With ``journal_keep_days`` the checkpoint deletes segments whose batches all
+    arrived longer ago; without it nothing goes; a retention under a day is refused
+    naming the key."""
+    day = 86_400 * NS_PER_S
+    now = 1_460_000_000 * NS_PER_S
+    reg = tmp_path / "sites.toml"
+    reg.write_text(small_registry.to_toml())
+    for keep, left in ((None, 4), (2.0, 3)):
+        data = tmp_path / f"data-{keep}"
+        jdir = data / "journal"
+        jdir.mkdir(parents=True)
+        for age_days in (5.0, 3.0, 1.5, 0.5):
+            _segment(jdir, now - round(age_days * day))
+        cfg = ServiceConfig(
+            registry=reg, data_dir=data, metrics=MetricsConfig(port=0), journal_keep_days=keep
+        )
+        service = Service(cfg, clock=lambda: now)
+        try:
+            service.save_checkpoint()
+            # 5 d and 3 d old segments end 3 d and 1.5 d ago: only the first is past 2 d
+            assert len(list(jdir.glob("journal-*.jsonl"))) == left
+            deleted = service.metrics.registry.get_sample_value(
+                "tocsin_journal_segments_deleted_total"
+            )
+            assert deleted == 4 - left
+        finally:
+            service.close()
+    with pytest.raises(ValidationError, match="journal_keep_days"):
+        ServiceConfig(registry=reg, journal_keep_days=0.5)

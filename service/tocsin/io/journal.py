@@ -8,7 +8,8 @@ fsyncs; the service acknowledges MQTT messages only after that (group commit),
 so an acknowledged batch is never lost.
 
 A :class:`Position` (segment name, byte offset) marks how far a checkpoint got;
-:func:`read_from` yields the lines after it, for recovery.
+:func:`read_from` yields the lines after it, for recovery. :func:`prune` deletes
+whole segments older than the service's retention, never one a restart needs.
 """
 
 from __future__ import annotations
@@ -115,6 +116,24 @@ def read_from(
             for line in fh:
                 if line.endswith(b"\n") and line.strip():
                     yield line.rstrip(b"\n")
+
+
+def prune(directory: Path, *, before_ns: int, keep: Position | None) -> list[Path]:
+    """Delete the oldest segments that end at or before the arrival time ``before_ns``
+    (GPS ns; a segment ends where the next one starts), oldest first; never the
+    newest segment (being written), nor the segment of ``keep`` (where the latest
+    checkpoint got to: a restart replays from there) or any after it. Returns the
+    deleted paths."""
+    segs = segments(directory)
+    gone: list[Path] = []
+    for k in range(len(segs) - 1):
+        if keep is not None and segs[k].name >= keep.segment:
+            break
+        if _first_recv(segs[k + 1]) > before_ns:
+            break
+        segs[k].unlink()
+        gone.append(segs[k])
+    return gone
 
 
 def _cut_torn_line(path: Path) -> None:

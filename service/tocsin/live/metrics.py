@@ -60,6 +60,11 @@ class Metrics:
             "tocsin_journal_lines", "Batches written to the journal", registry=r
         )
         self.checkpoints = Counter("tocsin_checkpoints", "Checkpoints written", registry=r)
+        self.journal_segments_deleted = Counter(
+            "tocsin_journal_segments_deleted",
+            "Journal segments deleted as older than journal_keep_days",
+            registry=r,
+        )
         self.alerts = Counter(
             "tocsin_alerts",
             "Alerts archived, by kind (new/update/retraction), level and status (queued/held)",

@@ -50,7 +50,7 @@ from tocsin.engine.sky import ecef_unit_to_radec
 from tocsin.errors import BatchRejected
 from tocsin.gpstime import gps_now_ns
 from tocsin.io import checkpoint
-from tocsin.io.journal import Journal, read_from
+from tocsin.io.journal import Journal, prune, read_from
 from tocsin.io.recording import decode_line
 from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
@@ -186,6 +186,18 @@ class Service:
         )
         self._last_ckpt = time.monotonic()
         self.metrics.checkpoints.inc()
+        keep_days = self.cfg.journal_keep_days
+        if keep_days is not None:
+            cutoff = self.clock() - round(keep_days * 86_400 * NS_PER_S)
+            gone = prune(self.journal.directory, before_ns=cutoff, keep=self.journal.position)
+            if gone:
+                self.metrics.journal_segments_deleted.inc(len(gone))
+                log.info(
+                    "deleted %d journal segment(s) older than %g days, up to %s",
+                    len(gone),
+                    keep_days,
+                    gone[-1].name,
+                )
 
     def close(self) -> None:
         self.archive.close()
