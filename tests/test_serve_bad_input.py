@@ -15,6 +15,7 @@ import orjson
 import pytest
 
 from tests.livenet import (
+    SITES,
     demo_lines,
     journal_lines,
     publish_sync,
@@ -24,6 +25,8 @@ from tests.livenet import (
     write_config,
 )
 from tests.mosquitto import Mosquitto, free_port
+from tocsin.live import service as service_mod
+from tocsin.model.service_config import MetricsConfig, ServiceConfig
 
 pytestmark = [pytest.mark.broker, pytest.mark.slow]
 
@@ -94,3 +97,30 @@ def test_a_thousand_bad_messages_mixed_with_good_ones(
     rejected = [json.loads(x) for x in rejected_log.splitlines()]
     assert len(rejected) == len(bad)
     assert all(r["reason"] and r["detail"] for r in rejected)
+
+
+def test_the_rejection_log_is_rotated_not_grown_without_end(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A site that keeps sending bad batches: ``rejected.jsonl`` is moved to
+    ``rejected.jsonl.1`` at its size limit (an older one is replaced), every refusal
+    is still counted in the metrics, and the newest ones are in the current log."""
+    monkeypatch.setattr(service_mod, "REJECTED_LOG_BYTES", 2_000)
+    cfg = ServiceConfig(registry=SITES, data_dir=tmp_path / "data", metrics=MetricsConfig(port=0))
+    svc = service_mod.Service(cfg)
+    site = svc.registry.ids[0]
+    try:
+        for k in range(100):
+            assert svc.on_hits(site, b'{"v": 1, "broken": %d' % k) is False
+    finally:
+        svc.close()
+    log, old = svc.rej_path, svc.rej_path.with_name("rejected.jsonl.1")
+    assert log.stat().st_size < 2_000 + 1_000 and 2_000 <= old.stat().st_size < 3_000
+    n_kept = len(log.read_bytes().splitlines()) + len(old.read_bytes().splitlines())
+    assert n_kept < 100  # the oldest went
+    last = orjson.loads(log.read_bytes().splitlines()[-1])
+    assert last["reason"] == "bad_json" and last["topic_site"] == site
+    total = svc.metrics.registry.get_sample_value(
+        "tocsin_batches_rejected_total", {"reason": "bad_json"}
+    )
+    assert total == 100

@@ -89,6 +89,10 @@ MAX_FUTURE_S = 60.0
 """A batch starting this far (s) after the service's clock is refused: a site clock is wrong."""
 QUEUE_MAX = 20_000
 """Messages waiting for the pipeline; beyond this the reader waits (the broker holds the rest)."""
+REJECTED_LOG_BYTES = 64 * 1024 * 1024
+"""``rejected.jsonl`` is moved to ``rejected.jsonl.1`` (replacing an older one) when it
+reaches this size: a site that keeps sending bad batches cannot fill the disk. The
+counts stay in the metrics."""
 
 
 class Service:
@@ -108,7 +112,8 @@ class Service:
         self.cand_path = data / "candidates.jsonl"
         self._written = _written_keys(self.cand_path)
         self._cand_fh = open(self.cand_path, "ab")  # noqa: SIM115 - closed in close()
-        self._rej_fh = open(data / "rejected.jsonl", "ab")  # noqa: SIM115
+        self.rej_path = data / "rejected.jsonl"
+        self._rej_fh = open(self.rej_path, "ab")  # noqa: SIM115
         self.key = checkpoint.state_key(self.registry, cfg.engine)
         self.lateness_ns = round(cfg.engine.lateness_s * NS_PER_S)
         self._last_recv = 0
@@ -324,6 +329,10 @@ class Service:
             "detail": detail[:500],
         }
         self._rej_fh.write(orjson.dumps(rec) + b"\n")
+        if self._rej_fh.tell() >= REJECTED_LOG_BYTES:
+            self._rej_fh.close()
+            self.rej_path.replace(self.rej_path.with_name(self.rej_path.name + ".1"))
+            self._rej_fh = open(self.rej_path, "ab")  # noqa: SIM115 - closed in close()
 
     def _write(self, cands: list[Candidate], *, live: bool) -> None:
         if not cands:
