@@ -82,6 +82,7 @@ def test_elliptical_map_holds_the_ellipses_probability(
     with fits.open(path) as hdul:
         h = hdul[1].header
         assert (h["ERR_MAJ"], h["ERR_MIN"], h["ERR_PA"]) == (major, minor, pa)
+        assert "MAP_MIN" not in h
         uniq = np.asarray(hdul[1].data["UNIQ"], dtype=np.int64)
         dens = np.asarray(hdul[1].data["PROBDENSITY"], dtype=np.float64)
     area = pixel_area_sr(uniq)
@@ -119,6 +120,7 @@ def test_a_very_thin_ellipse_is_mapped_widened(tmp_path: Path) -> None:
         ellipse=(major, minor, 0.0),
     )
     with fits.open(path) as hdul:
+        assert hdul[1].header["MAP_MIN"] == major / MAX_AXIS_RATIO  # said in the header
         uniq = np.asarray(hdul[1].data["UNIQ"], dtype=np.int64)
         dens = np.asarray(hdul[1].data["PROBDENSITY"], dtype=np.float64)
     assert uniq.size < 120_000

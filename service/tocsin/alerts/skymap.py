@@ -232,6 +232,8 @@ def write_skymap(
         h["ERR_MAJ"] = (ellipse[0], "[deg] 1-sigma semi-major axis")
         h["ERR_MIN"] = (ellipse[1], "[deg] 1-sigma semi-minor axis")
         h["ERR_PA"] = (ellipse[2], "[deg] major axis position angle, N through E")
+        if ellipse[1] < ellipse[0] / MAX_AXIS_RATIO:
+            h["MAP_MIN"] = (ellipse[0] / MAX_AXIS_RATIO, "[deg] minor axis the map uses (widened)")
     h["CREATOR"] = ("tocsin", "program that wrote this file")
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(path.suffix + ".tmp")
