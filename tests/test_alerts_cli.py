@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from tests.livenet import DEMO, SITES
-from tocsin.alerts.packet import read_alert
+from tocsin.alerts.packet import ParsedAlert, read_alert
+from tocsin.alerts.skyplot import NoDirection, ellipse_outline, sky_plot
 from tocsin.cli.main import main
 
 
@@ -28,3 +31,32 @@ def test_alerts_table_and_packet(tmp_path: Path, capsys: pytest.CaptureFixture[s
     assert main(["alerts", "--archive", str(out / "alerts.sqlite"), "--show", ivorn + "z"]) == 2
     assert "no archived alert" in capsys.readouterr().err
     assert main(["alerts", "--archive", str(tmp_path / "none.sqlite")]) == 2
+    # the localisation picture: a PNG from the packet alone
+    png = tmp_path / "sky" / "front.png"
+    argv = ["alerts", "--archive", str(out / "alerts.sqlite"), "--show", ivorn]
+    assert main([*argv, "--sky-plot", str(png)]) == 0
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "sky plot written" in capsys.readouterr().err
+    assert main(["alerts", "--archive", str(out / "alerts.sqlite"), "--sky-plot", "x.png"]) == 2
+    assert "--sky-plot needs --show" in capsys.readouterr().err
+
+
+def test_ellipse_outline_points_lie_on_the_ellipse_at_its_angle() -> None:
+    """Each outline point has Mahalanobis distance k from the centre, and the farthest
+    points lie at the position angle (north through east, as astropy measures it)."""
+    major, minor, pa = 3.0, 1.0, 30.0
+    east, north = ellipse_outline(major, minor, pa, k=2.0, n=721)
+    p = math.radians(pa)
+    along = north * math.cos(p) + east * math.sin(p)
+    across = -north * math.sin(p) + east * math.cos(p)
+    np.testing.assert_allclose((along / major) ** 2 + (across / minor) ** 2, 4.0, rtol=1e-12)
+    far = int(np.argmax(east**2 + north**2))
+    angle = math.degrees(math.atan2(east[far], north[far])) % 180.0
+    assert angle == pytest.approx(pa, abs=0.5)
+    assert math.hypot(east[far], north[far]) == pytest.approx(2.0 * major, rel=1e-4)
+
+
+def test_sky_plot_refuses_an_alert_without_a_direction() -> None:
+    alert = ParsedAlert("ivo://x/y#z", "test", {}, None, None, None, None, None, [])
+    with pytest.raises(NoDirection, match="no fitted direction"):
+        sky_plot(alert)

@@ -29,6 +29,12 @@ def add_parser(sub: Any) -> None:
     src.add_argument("--config", type=Path, help="service config (TOML)")
     src.add_argument("--archive", type=Path, help="archive file (alerts.sqlite)")
     p.add_argument("--show", metavar="IVORN", help="print this alert's packet (XML)")
+    p.add_argument(
+        "--sky-plot",
+        metavar="PNG",
+        type=Path,
+        help="with --show: also draw the alert's localisation (error ellipses) to this file",
+    )
     p.add_argument("--limit", type=int, default=50, help="rows in the table (default 50)")
 
 
@@ -57,6 +63,8 @@ def open_existing(path: Path) -> Archive:
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.sky_plot is not None and not args.show:
+        raise ConfigError("--sky-plot needs --show IVORN (the alert to draw)")
     arch = open_existing(archive_path(args))
     try:
         if args.show:
@@ -65,6 +73,14 @@ def run(args: argparse.Namespace) -> int:
                 raise ConfigError(f"no archived alert has IVORN {args.show!r}")
             sys.stdout.write(row.xml.decode())
             sys.stdout.write("\n")
+            if args.sky_plot is not None:
+                from tocsin.alerts.packet import read_alert
+                from tocsin.alerts.skyplot import sky_plot
+
+                png = sky_plot(read_alert(row.xml))
+                args.sky_plot.parent.mkdir(parents=True, exist_ok=True)
+                args.sky_plot.write_bytes(png)
+                print(f"sky plot written to {args.sky_plot}", file=sys.stderr)
             return 0
         rows = arch.latest(args.limit)
         table = [
