@@ -260,6 +260,14 @@ def _say_alert(say: Callable[[str], None], c: Candidate, service: Service) -> No
         f"  ALERT ({service.cfg.alerts.role}) {a.kind}/{a.level} {a.status}: {a.ivorn}\n"
         f"        VOEvent packet: {path}"
     )
+    if c.ra_deg is not None:  # what `tocsin alerts --show IVORN --sky-plot` draws
+        from tocsin.alerts.packet import read_alert
+        from tocsin.alerts.skyplot import sky_plot
+
+        png = service.cfg.data_dir / "plots" / (path.stem + ".png")
+        png.parent.mkdir(parents=True, exist_ok=True)
+        png.write_bytes(sky_plot(read_alert(a.xml)))
+        say(f"        sky plot: {png}")
 
 
 async def run_recording_demo(
