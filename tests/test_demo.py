@@ -33,6 +33,10 @@ def test_demo_finds_its_front(tmp_path: Path, capsys: pytest.CaptureFixture[str]
     assert packets
     p = read_alert(packets[0].read_bytes())
     assert p.role == "test"
+    # and its localisation was drawn, where the demo says
+    plots = sorted((tmp_path / "data" / "plots").glob("*.png"))
+    assert plots and f"sky plot: {plots[0]}" in out
+    assert plots[0].read_bytes()[:4] == b"\x89PNG"
     print(f"demo took {elapsed:.0f} s")
 
 
