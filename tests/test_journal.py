@@ -89,6 +89,9 @@ def test_service_deletes_old_segments_after_a_checkpoint(
                 "tocsin_journal_segments_deleted_total"
             )
             assert deleted == 4 - left
+            on_disk = sum(p.stat().st_size for p in jdir.glob("journal-*.jsonl"))
+            got = service.metrics.registry.get_sample_value("tocsin_journal_bytes")
+            assert got == on_disk > 0
         finally:
             service.close()
     with pytest.raises(ValidationError, match="journal_keep_days"):

@@ -60,6 +60,11 @@ class Metrics:
             "tocsin_journal_lines", "Batches written to the journal", registry=r
         )
         self.checkpoints = Counter("tocsin_checkpoints", "Checkpoints written", registry=r)
+        self.journal_bytes = Gauge(
+            "tocsin_journal_bytes",
+            "Bytes of journal on disk (at the latest checkpoint)",
+            registry=r,
+        )
         self.journal_segments_deleted = Counter(
             "tocsin_journal_segments_deleted",
             "Journal segments deleted as older than journal_keep_days",

@@ -50,7 +50,7 @@ from tocsin.engine.sky import ecef_unit_to_radec
 from tocsin.errors import BatchRejected
 from tocsin.gpstime import gps_now_ns
 from tocsin.io import checkpoint
-from tocsin.io.journal import Journal, prune, read_from
+from tocsin.io.journal import Journal, prune, read_from, segments
 from tocsin.io.recording import decode_line
 from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
@@ -203,6 +203,9 @@ class Service:
                     keep_days,
                     gone[-1].name,
                 )
+        self.metrics.journal_bytes.set(
+            sum(seg.stat().st_size for seg in segments(self.journal.directory))
+        )
 
     def close(self) -> None:
         self.archive.close()
