@@ -10,7 +10,7 @@ import pytest
 
 from tests.livenet import DEMO, SITES
 from tocsin.alerts.packet import ParsedAlert, read_alert
-from tocsin.alerts.skyplot import NoDirection, ellipse_outline, sky_plot
+from tocsin.alerts.skyplot import NoDirection, ellipse_outline, error_shape, sky_plot
 from tocsin.cli.main import main
 
 
@@ -60,3 +60,15 @@ def test_sky_plot_refuses_an_alert_without_a_direction() -> None:
     alert = ParsedAlert("ivo://x/y#z", "test", {}, None, None, None, None, None, [])
     with pytest.raises(NoDirection, match="no fitted direction"):
         sky_plot(alert)
+
+
+def test_sky_plot_of_a_packet_without_an_ellipse_draws_circles() -> None:
+    """A packet from before the ellipse parameters (or another writer's): the plot
+    falls back to circles of the packet's radius."""
+    alert = ParsedAlert(
+        "ivo://x/y#z", "observation", {"false_alarm_rate": "0.5"}, None, None, 150.0, 35.0, 0.2, []
+    )
+    assert error_shape(alert) == (0.2, 0.2, 0.0, "1σ and 2σ error circles")
+    assert sky_plot(alert)[:4] == b"\x89PNG"
+    alert.params.update(err_ellipse_major="0.3", err_ellipse_minor="0.1", err_ellipse_pa="40")
+    assert error_shape(alert) == (0.3, 0.1, 40.0, "1σ and 2σ error ellipses")

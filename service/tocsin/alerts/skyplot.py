@@ -55,20 +55,27 @@ def _unit(size_deg: float) -> tuple[float, str]:
     return 1.0 / 3600.0, "arcsec"
 
 
-def sky_plot(alert: ParsedAlert) -> bytes:
-    """PNG of the alert's localisation (raises :class:`NoDirection` without one)."""
-    if alert.ra_deg is None or alert.dec_deg is None or not alert.err_deg:
-        raise NoDirection(f"alert {alert.ivorn} has no fitted direction to plot")
+def error_shape(alert: ParsedAlert) -> tuple[float, float, float, str]:
+    """(semi-major, semi-minor, position angle, what they are) in degrees: the
+    packet's ``err_ellipse_*`` parameters, or for a packet without them (an older
+    one, another writer's) the circle of its ``Error2Radius``."""
     p = alert.params
     try:
         major = float(p["err_ellipse_major"])
         minor = float(p["err_ellipse_minor"])
         pa = float(p["err_ellipse_pa"])
-        shape = "1σ and 2σ error ellipses"
-    except (KeyError, ValueError):  # an older packet: the circle is all there is
-        major = minor = float(alert.err_deg)
-        pa = 0.0
-        shape = "1σ and 2σ error circles"
+    except (KeyError, ValueError):
+        r = float(alert.err_deg or 0.0)
+        return r, r, 0.0, "1σ and 2σ error circles"
+    return major, minor, pa, "1σ and 2σ error ellipses"
+
+
+def sky_plot(alert: ParsedAlert) -> bytes:
+    """PNG of the alert's localisation (raises :class:`NoDirection` without one)."""
+    if alert.ra_deg is None or alert.dec_deg is None or not alert.err_deg:
+        raise NoDirection(f"alert {alert.ivorn} has no fitted direction to plot")
+    p = alert.params
+    major, minor, pa, shape = error_shape(alert)
     scale, unit = _unit(3.0 * major)
     a, b, r = major / scale, minor / scale, float(alert.err_deg) / scale
     span = 3.0 * a
