@@ -65,13 +65,13 @@ def test_service_deletes_old_segments_after_a_checkpoint(
     tmp_path: Path, small_registry: SiteRegistry
 ) -> None:
     """With ``journal_keep_days`` the checkpoint deletes segments whose batches all
-    arrived longer ago; without it nothing goes; a retention under a day is refused
+    arrived longer ago; with 0 nothing goes; a retention under a day is refused
     naming the key."""
     day = 86_400 * NS_PER_S
     now = 1_460_000_000 * NS_PER_S
     reg = tmp_path / "sites.toml"
     reg.write_text(small_registry.to_toml())
-    for keep, left in ((None, 4), (2.0, 3)):
+    for keep, left in ((0.0, 4), (2.0, 3)):
         data = tmp_path / f"data-{keep}"
         jdir = data / "journal"
         jdir.mkdir(parents=True)
@@ -94,5 +94,6 @@ def test_service_deletes_old_segments_after_a_checkpoint(
             assert got == on_disk > 0
         finally:
             service.close()
-    with pytest.raises(ValidationError, match="journal_keep_days"):
-        ServiceConfig(registry=reg, journal_keep_days=0.5)
+    for bad in (0.5, -1.0):
+        with pytest.raises(ValidationError, match="journal_keep_days"):
+            ServiceConfig(registry=reg, journal_keep_days=bad)

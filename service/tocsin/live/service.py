@@ -192,16 +192,17 @@ class Service:
         self._last_ckpt = time.monotonic()
         self.metrics.checkpoints.inc()
         keep_days = self.cfg.journal_keep_days
-        if keep_days is not None:
+        if keep_days > 0:
             cutoff = self.clock() - round(keep_days * 86_400 * NS_PER_S)
             gone = prune(self.journal.directory, before_ns=cutoff, keep=self.journal.position)
             if gone:
                 self.metrics.journal_segments_deleted.inc(len(gone))
-                log.info(
-                    "deleted %d journal segment(s) older than %g days, up to %s",
-                    len(gone),
-                    keep_days,
-                    gone[-1].name,
+                event(
+                    log,
+                    "journal_pruned",
+                    segments=len(gone),
+                    keep_days=keep_days,
+                    last=gone[-1].name,
                 )
         self.metrics.journal_bytes.set(
             sum(seg.stat().st_size for seg in segments(self.journal.directory))

@@ -4,7 +4,7 @@ Layout::
 
     registry = "replay_data/network.toml"   # site registry (relative to this file)
     data_dir = "/var/lib/tocsin"            # journal, checkpoints, candidates (relative ok)
-    journal_keep_days = 14                  # older journal segments are deleted (>= 1)
+    journal_keep_days = 14                  # older journal segments are deleted (0: keep all)
 
     [broker]
     url = "mqtt://127.0.0.1:1883"           # mqtt:// or mqtts:// ; omit the table for the
@@ -117,12 +117,19 @@ class ServiceConfig(BaseModel):
     engine_threads: Annotated[int, Field(ge=1, le=64)] | None = None
     """Threads the engine evaluates with (None: the cores available, at most 4). The
     candidates do not depend on it."""
-    journal_keep_days: Annotated[float, Field(ge=1.0)] | None = 14.0
+    journal_keep_days: Annotated[float, Field(ge=0.0)] = 14.0
     """Journal segments whose batches all arrived longer ago than this (days) are
-    deleted after a checkpoint (None: keep them all). At least a day: a restart
-    replays the journal after its checkpoint, and the follow-up search reads the
-    last hours of it. Disk: about 35 bytes a hit, e.g. 30 GB a day for 1000 sites at
-    10 Hz."""
+    deleted after a checkpoint; 0 keeps them all. Otherwise at least a day: a
+    restart replays the journal after its checkpoint, and the follow-up search
+    reads the last hours of it. Disk: about 35 bytes a hit, e.g. 30 GB a day for
+    1000 sites at 10 Hz."""
+
+    @field_validator("journal_keep_days")
+    @classmethod
+    def _keep_a_day(cls, v: float) -> float:
+        if 0.0 < v < 1.0:
+            raise ValueError(f"journal_keep_days {v!r} must be 0 (keep all) or at least 1 day")
+        return v
 
 
 def load_service_config(path: str | Path, *, env: dict[str, str] | None = None) -> ServiceConfig:
