@@ -105,38 +105,38 @@ class BinStore:
             hi - lo,
         )
 
-    def _check_held(self, b0: int, b1: int) -> None:
+    def _stretches(self, b0: int, b1: int) -> list[slice]:
+        """The ring columns of bins ``[b0, b1)``: one stretch, or two when the range
+        wraps around the ring's end (raises naming the range if it is not all held)."""
         if self.end_bin is None or b0 < self.first_bin or b1 > self.end_bin or b1 < b0:
             raise IndexError(
                 f"bins [{b0}, {b1}) are not all held (held: [{self.first_bin}, {self.end_bin}))"
             )
+        c0 = b0 % self.capacity
+        first = min(b1 - b0, self.capacity - c0)
+        out = [slice(c0, c0 + first)]
+        if first < b1 - b0:  # the rest from the start of the ring
+            out.append(slice(0, b1 - b0 - first))
+        return out
 
     def _read(self, ring: I64Array, b0: int, b1: int) -> I64Array:
-        """Bins ``[b0, b1)`` of ``ring``: a read-only view when they do not wrap around
-        the ring's end (no copy of up to an hour of bins), else a gathered copy."""
-        self._check_held(b0, b1)
-        c0 = b0 % self.capacity
-        if c0 + (b1 - b0) <= self.capacity:
-            out = ring[:, c0 : c0 + (b1 - b0)]
-        else:
-            out = ring[:, np.arange(b0, b1) % self.capacity]
+        """Bins ``[b0, b1)`` of ``ring``, read only: a view when they do not wrap
+        around the ring's end (no copy of up to an hour of bins), else a copy."""
+        parts = self._stretches(b0, b1)
+        out = ring[:, parts[0]] if len(parts) == 1 else np.hstack([ring[:, c] for c in parts])
         out.flags.writeable = False
         return out
 
     def totals(self, b0: int, b1: int) -> tuple[I64Array, I64Array]:
         """Per site, the hits and the live nanoseconds summed over bins ``[b0, b1)``
-        (shape (n_sites,) each): the ring's one or two stretches are summed where they
-        lie, without gathering the bins (an hour of 1 s bins is read once per rate
-        epoch). Integer sums: equal to the sums of :meth:`counts` and :meth:`live_ns`."""
-        self._check_held(b0, b1)
-        c0 = b0 % self.capacity
-        first = min(b1 - b0, self.capacity - c0)
-        n = self._counts[:, c0 : c0 + first].sum(axis=1)
-        live = self._live[:, c0 : c0 + first].sum(axis=1)
-        if first < b1 - b0:  # the rest from the start of the ring
-            rest = b1 - b0 - first
-            n += self._counts[:, :rest].sum(axis=1)
-            live += self._live[:, :rest].sum(axis=1)
+        (shape (n_sites,) each): each stretch of the ring is summed where it lies,
+        without gathering the bins (an hour of 1 s bins is read once per rate epoch).
+        Integer sums: equal to the sums of :meth:`counts` and :meth:`live_ns`."""
+        n = np.zeros(self.n_sites, dtype=np.int64)
+        live = np.zeros(self.n_sites, dtype=np.int64)
+        for c in self._stretches(b0, b1):
+            n += self._counts[:, c].sum(axis=1)
+            live += self._live[:, c].sum(axis=1)
         return n, live
 
     def counts(self, b0: int, b1: int) -> I64Array:
