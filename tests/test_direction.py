@@ -508,6 +508,7 @@ def test_error_ellipse_matches_the_scatter_of_sampled_directions() -> None:
     fit = fit_front(POS[idx], t, SIGMA[idx])
     assert fit is not None
     ell = error_ellipse(fit)
+    assert error_ellipse(fit, front_radec(fit)) == ell  # the caller's own direction
     vals = np.linalg.eigvalsh(fit.cov_rad2)
     assert ell.major_deg == pytest.approx(math.degrees(math.sqrt(vals[1])), rel=1e-12)
     assert ell.minor_deg == pytest.approx(math.degrees(math.sqrt(vals[0])), rel=1e-12)

@@ -383,7 +383,7 @@ class Engine:
             return
         ra, dec = front_radec(fit)
         cand.ra_deg, cand.dec_deg, cand.err_deg = ra, dec, float(fit.err_deg)
-        ell = error_ellipse(fit)
+        ell = error_ellipse(fit, (ra, dec))
         cand.details["err_ellipse_deg"] = [ell.major_deg, ell.minor_deg, ell.pa_deg]
         cand.details["front_chi2"] = float(fit.chi2)
         cand.details["front_ndof"] = int(fit.ndof)

@@ -574,15 +574,16 @@ class ErrorEllipse:
     pa_deg: float
 
 
-def error_ellipse(fit: FrontFit) -> ErrorEllipse:
+def error_ellipse(fit: FrontFit, radec: tuple[float, float] | None = None) -> ErrorEllipse:
     """The fit's 1σ error ellipse: semi-axes from ``cov_rad2``; the position angle
     from carrying a point a small step along the major axis (ECEF, at ``t0_ns``)
     into ICRS with the same transformation as the direction (so the rotation of
-    the Earth, precession and nutation between the two frames are included)."""
+    the Earth, precession and nutation between the two frames are included).
+    ``radec``: the direction's :func:`front_radec`, when the caller has it."""
     vals, vecs = np.linalg.eigh(fit.cov_rad2)  # ascending
     minor, major = (float(np.degrees(np.sqrt(max(v, 0.0)))) for v in vals)
     axis = fit.tangent_basis.T @ vecs[:, 1]  # ECEF unit vector along the major axis
-    ra0, dec0 = front_radec(fit)
+    ra0, dec0 = front_radec(fit) if radec is None else radec
     ra1, dec1 = ecef_unit_to_radec(fit.n + ELLIPSE_STEP_RAD * axis, fit.t0_ns)
     return ErrorEllipse(major, minor, position_angle_deg(ra0, dec0, ra1, dec1) % 180.0)
 
