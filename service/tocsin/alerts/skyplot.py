@@ -10,20 +10,15 @@ unit that suits the error's size. A test alert says so in the title.
 
 from __future__ import annotations
 
-import io
 import math
 
-import matplotlib
-
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt
 import numpy as np
 
 from tocsin.alerts.packet import ParsedAlert
 from tocsin.errors import TocsinError
+from tocsin.figures import plt, png_bytes
 from tocsin.types import F64Array
 
-DPI = 100
 SIGMA_LEVELS = (1.0, 2.0)
 """Ellipses drawn, in units of the 1σ ellipse (probability 1 - exp(-k²/2) inside)."""
 
@@ -122,7 +117,4 @@ def sky_plot(alert: ParsedAlert) -> bytes:
         fontsize=9,
     )
     ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=8)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=DPI, bbox_inches="tight")
-    plt.close(fig)
-    return buf.getvalue()
+    return png_bytes(fig)

@@ -6,31 +6,17 @@ says how to read it.
 
 from __future__ import annotations
 
-import io
 import math
 from collections.abc import Sequence
-from typing import Any
 
-import matplotlib
-
-matplotlib.use("Agg")
-import matplotlib.pyplot as plt
 import numpy as np
 
+from tocsin.figures import plt, png_bytes
 from tocsin.tune.far import TRIGGERS, FarCurve
 from tocsin.tune.injections import Outcome
 from tocsin.tune.recommend import KIND_OF_TRIGGER, Recommendation
 from tocsin.tune.recorded import RecordedNetwork
 from tocsin.types import NS_PER_S, F64Array
-
-DPI = 100
-
-
-def _png(fig: Any) -> bytes:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=DPI, bbox_inches="tight")
-    plt.close(fig)
-    return buf.getvalue()
 
 
 def far_figure(curves: Sequence[FarCurve], recs: Sequence[Recommendation]) -> bytes:
@@ -111,7 +97,7 @@ def far_figure(curves: Sequence[FarCurve], recs: Sequence[Recommendation]) -> by
             ax2.legend(fontsize=7, loc="upper left", ncol=2)
     fig.suptitle("False alarm rate from time slides against the engine's own rate", fontsize=14)
     fig.tight_layout()
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def efficiency_figure(
@@ -152,7 +138,7 @@ def efficiency_figure(
         else:
             ax.text(0.5, 0.5, "no injections of this kind", ha="center", transform=ax.transAxes)
     fig.tight_layout()
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def rates_figure(net: RecordedNetwork, bin_s: float = 60.0) -> bytes:
@@ -193,7 +179,7 @@ def rates_figure(net: RecordedNetwork, bin_s: float = 60.0) -> bytes:
         fontsize=12,
     )
     fig.tight_layout()
-    return _png(fig)
+    return png_bytes(fig)
 
 
 def _fmt_s(w: float) -> str:
