@@ -18,10 +18,7 @@ from tocsin.types import NS_PER_S
 
 def plot_followup(path: Path, block: Block, r: TargetedResult, title: str) -> Path:
     """Write a PNG of the follow-up ``r`` over ``block`` to ``path``."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from tocsin.figures import plt  # headless; loaded only when a plot is asked for
 
     length = int(r.window_end - r.window_start)
     lo = max(int(block.t_start), int(r.window_start) - length)
