@@ -16,6 +16,7 @@ from tocsin.alerts.packet import read_alert
 from tocsin.alerts.policy import AlertDesk, AlertError
 from tocsin.errors import ConfigError
 from tocsin.model.alert_config import AlertConfig
+from tocsin.model.candidate import Candidate
 from tocsin.types import NS_PER_S
 
 
@@ -89,6 +90,15 @@ def test_retraction(tmp_path: Path) -> None:
     assert desk.consider(front_candidate(far=0.001, revision=3, cid=first.candidate_id)) is None
 
 
+def _statuses_after_restart(
+    tmp_path: Path, cfg: AlertConfig, cands: list[Candidate]
+) -> list[str | None]:
+    """A new desk on the same archive (a restart) considers ``cands``: their statuses
+    (None where no alert was made)."""
+    again = _desk(tmp_path, cfg)
+    return [None if (r := again.consider(c)) is None else r.status for c in cands]
+
+
 def test_rate_limit_holds_a_storm_and_refills_with_event_time(tmp_path: Path) -> None:
     desk = _desk(tmp_path, config(burst=3, max_per_hour=6.0))
     rows = [desk.consider(excess_candidate(far=100.0, t_ns=T0 + k * NS_PER_S)) for k in range(10)]
@@ -101,9 +111,10 @@ def test_rate_limit_holds_a_storm_and_refills_with_event_time(tmp_path: Path) ->
     assert later is not None and later.status == "queued"
     desk.archive.close()
     # a restart rebuilds the bucket from the archive: still empty right after
-    again = _desk(tmp_path, config(burst=3, max_per_hour=6.0))
-    r = again.consider(excess_candidate(far=100.0, t_ns=T0 + 701 * NS_PER_S))
-    assert r is not None and r.status == "held"
+    cfg = config(burst=3, max_per_hour=6.0)
+    assert _statuses_after_restart(
+        tmp_path, cfg, [excess_candidate(far=100.0, t_ns=T0 + 701 * NS_PER_S)]
+    ) == ["held"]
 
 
 def test_public_bucket_not_starved_by_internal_storm(tmp_path: Path) -> None:
@@ -123,11 +134,12 @@ def test_public_bucket_not_starved_by_internal_storm(tmp_path: Path) -> None:
     assert r is not None and r.status == "held"
     desk.archive.close()
     # a restart rebuilds both buckets from the archive with the same takes: both empty
-    again = _desk(tmp_path, config(burst=2, max_per_hour=1.0))
-    r = again.consider(excess_candidate(far=100.0, t_ns=T0 + 10 * NS_PER_S))
-    assert r is not None and r.status == "held"
-    r = again.consider(front_candidate(far=0.1, t_ns=T0 + 11 * NS_PER_S, cid="f9"))
-    assert r is not None and r.status == "held"
+    later = [
+        excess_candidate(far=100.0, t_ns=T0 + 10 * NS_PER_S),
+        front_candidate(far=0.1, t_ns=T0 + 11 * NS_PER_S, cid="f9"),
+    ]
+    cfg = config(burst=2, max_per_hour=1.0)
+    assert _statuses_after_restart(tmp_path, cfg, later) == ["held", "held"]
 
 
 def test_public_alerts_count_in_the_internal_bucket(tmp_path: Path) -> None:
