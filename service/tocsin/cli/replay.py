@@ -78,7 +78,8 @@ def run(args: argparse.Namespace) -> int:
     if args.candidate_far is not None and not args.candidate_far > 0:
         raise ValueError(f"--candidate-far {args.candidate_far!r} must be a positive rate per year")
     source: Path = args.recording
-    if source.is_dir():
+    journal = source.is_dir()
+    if journal:
         segs = segments(source)
         if not segs:
             raise FileNotFoundError(
@@ -122,7 +123,7 @@ def run(args: argparse.Namespace) -> int:
     ):
         raw_lines: Iterable[bytes]
         position: Callable[[], int]
-        if source.is_dir():
+        if journal:
             raw_lines, position = _journal_lines(source)
         else:
             fh = stack.enter_context(open_text(source, "rb"))
