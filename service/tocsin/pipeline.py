@@ -8,13 +8,16 @@ same arrivals give the same blocks and the same candidates.
 
 from __future__ import annotations
 
+import itertools
+import operator
 from collections import Counter
-from collections.abc import Callable
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, NamedTuple
 
 from tocsin.engine.block import Block
 from tocsin.engine.core import Engine
+from tocsin.io.line_scan import decode_lines
 from tocsin.io.recording import Rejected
 from tocsin.model.batch import HitBatch
 from tocsin.model.candidate import Candidate
@@ -23,9 +26,27 @@ from tocsin.model.registry import SiteRegistry
 from tocsin.ordering import Orderer
 from tocsin.types import NS_PER_S, GpsNs
 
+_T = operator.attrgetter("t")
+
 REPLAY_BLOCK_S = 16.0
 """Blocks handed to the engine (s) when a recording is replayed (replay, tuning): long
 for speed; the candidates do not depend on it."""
+
+
+FEED_CHUNK_LINES = 16384
+"""Recording lines read and offered together by :meth:`Pipeline.feed` (~5 MB of
+text; the hit times of a chunk are one array)."""
+
+
+class Fed(NamedTuple):
+    """What one chunk of :meth:`Pipeline.feed` gave."""
+
+    rejected: list[Rejected]
+    """The chunk's lines that could not be used, in order."""
+    candidates: list[Candidate]
+    """New candidates, in the order the engine gave them."""
+    last_line_no: int
+    """Number of the chunk's last line."""
 
 
 @dataclass(slots=True)
@@ -94,6 +115,54 @@ class Pipeline:
         c.accepted += 1
         c.hits_accepted += len(item.t)
         return self._run(self.orderer.release())
+
+    def offer_many(self, items: Sequence[HitBatch | Rejected]) -> list[Candidate]:
+        """:meth:`offer` each item in turn; the same candidates, counters and engine
+        state. Runs of batches the orderer can take without a decision of its own
+        (:meth:`Orderer.take_run`) are taken in one step; the rest go one by one."""
+        out: list[Candidate] = []
+        c = self.counters
+        n = len(items)
+        i = 0
+        while i < n:
+            j = i
+            while j < n and type(items[j]) is HitBatch:
+                j += 1
+            run = items[i:j]
+            taken = self.orderer.take_run(run) if len(run) > 1 else 0  # type: ignore[arg-type]
+            if taken:
+                c.batches += taken
+                c.accepted += taken
+                c.hits_accepted += sum(map(len, map(_T, run[:taken])))
+                self.last_status = "accepted"
+                self.last_new_gaps = 0
+                i += taken
+            else:
+                out += self.offer(items[i])
+                i += 1
+        return out
+
+    def feed(self, lines: Iterable[tuple[int, bytes]]) -> Iterator[Fed]:
+        """Replay's intake: numbered recording lines (stripped, not empty) in, read
+        :data:`FEED_CHUNK_LINES` at a time by one compiled pass
+        (:func:`~tocsin.io.line_scan.decode_lines`) and offered with
+        :meth:`offer_many`; one :class:`Fed` per chunk. The same candidates, in the
+        same order, as ``offer(decode_line(line))`` line by line. Call :meth:`finish`
+        at the end of input."""
+        chunk: list[bytes] = []
+        nos: list[int] = []
+        it = iter(lines)
+        while True:
+            chunk.clear()
+            nos.clear()
+            for no, line in itertools.islice(it, FEED_CHUNK_LINES):
+                nos.append(no)
+                chunk.append(line)
+            if not chunk:
+                return
+            items = decode_lines(chunk, self.registry, nos)
+            bad = [x for x in items if type(x) is Rejected]
+            yield Fed(bad, self.offer_many(items), nos[-1])
 
     def tick(self, now_ns: int) -> list[Candidate]:
         """Advance the watermark on an idle timer (live service).

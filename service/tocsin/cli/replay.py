@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import gc
 import sys
 import time
 from collections import Counter
@@ -22,7 +23,7 @@ from tocsin.engine.core import default_threads
 from tocsin.io.journal import PREFIX as JOURNAL_PREFIX
 from tocsin.io.journal import SUFFIX as JOURNAL_SUFFIX
 from tocsin.io.journal import read_from, segments
-from tocsin.io.recording import Rejected, decode_line, open_text
+from tocsin.io.recording import Rejected, open_text
 from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import load_engine_config
@@ -112,7 +113,6 @@ def run(args: argparse.Namespace) -> int:
     )
     desk = AlertDesk(alert_cfg, archive, packet_dir=out / "alerts", mqtt=False)
     latest: dict[str, Candidate] = {}
-    n_lines = 0
     t0 = time.perf_counter()
     progress = Progress(size, enabled=not args.quiet, label="replay")
     shown = 0
@@ -136,27 +136,32 @@ def run(args: argparse.Namespace) -> int:
                 if desk.consider(c) is not None:
                     flush_directory(archive, out / "alerts")
 
-        for k, raw in enumerate(raw_lines, start=1):
-            line = raw.strip()
-            if not line:
-                continue
-            n_lines += 1
-            item = decode_line(line, registry, line_no=k)
-            if isinstance(item, Rejected):
+        def numbered() -> Iterator[tuple[int, bytes]]:
+            for k, raw in enumerate(raw_lines, start=1):
+                line = raw.strip()
+                if line:
+                    yield k, line
+
+        # What exists now (imported modules, the registry, the engine's tables) lives
+        # to the end: kept out of the garbage collector's full passes, which would
+        # otherwise visit it again and again while batches pile up between releases.
+        gc.freeze()
+        for fed in pipe.feed(numbered()):
+            for item in fed.rejected:
                 rej_fh.write(orjson.dumps(_rej_obj(item)) + b"\n")
                 if shown < MAX_REJECT_LINES_SHOWN and not args.quiet:
                     print(
-                        f"line {k}: rejected ({item.reason}): {item.field}: {item.detail}",
+                        f"line {item.line_no}: rejected ({item.reason}): "
+                        f"{item.field}: {item.detail}",
                         file=sys.stderr,
                     )
                     shown += 1
-            emit(pipe.offer(item))
-            if k % 2000 == 0:
-                progress.update(position())
+            emit(fed.candidates)
+            progress.update(position())
         emit(pipe.finish())
     progress.done()
     wall = time.perf_counter() - t0
-    summary = _summary(pipe, latest, n_lines, wall)
+    summary = _summary(pipe, latest, pipe.counters.batches, wall)
     alerts = archive.latest(limit=1_000_000)
     summary["alerts"] = dict(sorted(Counter(f"{a.kind}/{a.level}" for a in alerts).items()))
     summary["alerts_held"] = sum(a.status == "held" for a in alerts)

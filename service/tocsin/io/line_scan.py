@@ -1,0 +1,297 @@
+"""Compiled reading of many recording lines at once, for replay.
+
+A recording line of an agent's plain 1 s batch (``{"v":1,"site":"...","seq":N,
+"live":[a,b],"t":[...],"recv_ns":R}``, keys in any order, JSON whitespace allowed)
+is read by one compiled pass over the bytes of a chunk of lines (numba, no Python
+object per hit or per line), straight into int64 columns. Most of a replay's time
+outside the engine went into building a Python dict, list and int per line and hit
+and then checking them one by one; this pass does neither.
+
+The pass takes only what it is sure of, and hands every other line back to the
+ordinary way (:func:`tocsin.io.recording.decode_line`: orjson and the batch rules),
+which alone decides and names a rejection. A line is taken only when all of this
+holds, and otherwise handed back:
+
+* one JSON object whose keys are some of ``v site seq live t recv_ns``, each at most
+  once, with ``v site seq live t`` present, and nothing after its closing brace;
+* ``v`` the integer 1; ``site`` a string of printable ASCII without escapes;
+  ``seq``, both ``live`` ends, every hit time and ``recv_ns`` non-negative integers
+  written plainly (no sign, fraction, exponent or leading zero) up to 2^63 - 1;
+* ``live`` at most :data:`~tocsin.model.batch.MAX_LIVE_NS` long, not ending before
+  it starts; hit times ascending inside it; at most
+  :data:`~tocsin.model.batch.MAX_HITS_PER_BATCH` hits;
+* and (checked in Python) a site the registry knows.
+
+Every such line is one that ``decode_line`` accepts as the same batch (the same
+site, sequence number, live interval, hit times and arrival time): the rules above
+are a subset of JSON and of the batch rules. ``tests/test_line_scan.py`` holds the
+two to that on generated and mutated lines.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from tocsin.engine.jit import kernel
+from tocsin.io.recording import Rejected, decode_line
+from tocsin.model.batch import MAX_HITS_PER_BATCH, MAX_LIVE_NS, HitBatch
+from tocsin.model.registry import SiteRegistry
+from tocsin.types import I64Array
+
+I64_MAX = 2**63 - 1
+_CUT = (I64_MAX - 9) // 10
+"""Largest value that can take one more digit without possibly passing 2^63 - 1."""
+
+# bit of each key in the "seen" mask
+_V, _SITE, _SEQ, _LIVE, _T, _RECV = 1, 2, 4, 8, 16, 32
+_REQUIRED = _V | _SITE | _SEQ | _LIVE | _T
+
+# per-line columns of the result (int64 matrix)
+COL_OK, COL_SITE_A, COL_SITE_B, COL_SEQ, COL_LIVE0, COL_LIVE1 = 0, 1, 2, 3, 4, 5
+COL_RECV, COL_T_A, COL_T_B = 6, 7, 8
+N_COLS = 9
+NO_RECV = -1
+"""``COL_RECV`` of a line without ``recv_ns``."""
+
+
+@kernel
+def _skip_ws(buf: np.ndarray, i: int, end: int) -> int:
+    """First position at or after ``i`` that is not JSON whitespace."""
+    while i < end:
+        c = buf[i]
+        if c != 32 and c != 9 and c != 10 and c != 13:
+            break
+        i += 1
+    return i
+
+
+@kernel
+def _uint(buf: np.ndarray, i: int, end: int) -> tuple[int, int]:
+    """A plain non-negative integer at ``i``: (value, position after it), or
+    (-1, i) when there is none, it is written otherwise (leading zero, fraction,
+    exponent) or it passes 2^63 - 1."""
+    j = i
+    val = 0
+    while j < end and 48 <= buf[j] <= 57:
+        d = int(buf[j]) - 48
+        if val > _CUT and val > (I64_MAX - d) // 10:
+            return -1, i
+        val = val * 10 + d
+        j += 1
+    if j == i or (buf[i] == 48 and j - i > 1):
+        return -1, i
+    if j < end:
+        c = buf[j]
+        if c == 46 or c == 101 or c == 69:  # '.', 'e', 'E': not an integer
+            return -1, i
+    return val, j
+
+
+@kernel
+def _key(buf: np.ndarray, a: int, b: int) -> int:
+    """Bit of the key ``buf[a:b]`` (0 for any other key)."""
+    n = b - a
+    if n == 1 and buf[a] == 118:  # v
+        return _V
+    if n == 1 and buf[a] == 116:  # t
+        return _T
+    if n == 4 and buf[a] == 115 and buf[a + 1] == 105 and buf[a + 2] == 116 and buf[a + 3] == 101:
+        return _SITE
+    if n == 3 and buf[a] == 115 and buf[a + 1] == 101 and buf[a + 2] == 113:
+        return _SEQ
+    if n == 4 and buf[a] == 108 and buf[a + 1] == 105 and buf[a + 2] == 118 and buf[a + 3] == 101:
+        return _LIVE
+    if (
+        n == 7
+        and buf[a] == 114
+        and buf[a + 1] == 101
+        and buf[a + 2] == 99
+        and buf[a + 3] == 118
+        and buf[a + 4] == 95
+        and buf[a + 5] == 110
+        and buf[a + 6] == 115
+    ):
+        return _RECV
+    return 0
+
+
+@kernel
+def _scan_one(
+    buf: np.ndarray, i: int, end: int, row: np.ndarray, t_out: np.ndarray, t_used: int
+) -> int:
+    """Read one line ``buf[i:end]`` into ``row`` (its hit times from ``t_out[t_used]``
+    on). Returns the hit times used (0 and ``row[COL_OK] = 0`` when the line is
+    handed back)."""
+    row[COL_OK] = 0
+    row[COL_RECV] = NO_RECV
+    i = _skip_ws(buf, i, end)
+    if i >= end or buf[i] != 123:  # '{'
+        return 0
+    seen = 0
+    n_t = 0
+    live0 = 0
+    live1 = 0
+    while True:
+        i = _skip_ws(buf, i + 1, end)
+        if i >= end or buf[i] != 34:  # '"' opening a key
+            return 0
+        a = i + 1
+        i = a
+        while i < end and buf[i] != 34 and buf[i] != 92:
+            i += 1
+        if i >= end or buf[i] != 34:
+            return 0
+        bit = _key(buf, a, i)
+        if bit == 0 or (seen & bit) != 0:
+            return 0  # another key, or one given twice
+        seen |= bit
+        i = _skip_ws(buf, i + 1, end)
+        if i >= end or buf[i] != 58:  # ':'
+            return 0
+        i = _skip_ws(buf, i + 1, end)
+        if i >= end:
+            return 0
+        if bit == _SITE:
+            if buf[i] != 34:
+                return 0
+            a = i + 1
+            i = a
+            while i < end and 32 <= buf[i] <= 126 and buf[i] != 34 and buf[i] != 92:
+                i += 1
+            if i >= end or buf[i] != 34:
+                return 0
+            row[COL_SITE_A] = a
+            row[COL_SITE_B] = i
+            i += 1
+        elif bit == _LIVE:
+            if buf[i] != 91:  # '['
+                return 0
+            live0, i = _uint(buf, _skip_ws(buf, i + 1, end), end)
+            if live0 < 0:
+                return 0
+            i = _skip_ws(buf, i, end)
+            if i >= end or buf[i] != 44:  # ','
+                return 0
+            live1, i = _uint(buf, _skip_ws(buf, i + 1, end), end)
+            if live1 < 0:
+                return 0
+            i = _skip_ws(buf, i, end)
+            if i >= end or buf[i] != 93:  # ']'
+                return 0
+            i += 1
+        elif bit == _T:
+            if buf[i] != 91:
+                return 0
+            i = _skip_ws(buf, i + 1, end)
+            if i < end and buf[i] == 93:
+                i += 1
+            else:
+                while True:
+                    x, i = _uint(buf, i, end)
+                    if x < 0 or n_t >= MAX_HITS_PER_BATCH:
+                        return 0
+                    t_out[t_used + n_t] = x
+                    n_t += 1
+                    i = _skip_ws(buf, i, end)
+                    if i >= end:
+                        return 0
+                    if buf[i] == 93:
+                        i += 1
+                        break
+                    if buf[i] != 44:
+                        return 0
+                    i = _skip_ws(buf, i + 1, end)
+        else:  # v, seq, recv_ns: an integer
+            x, i = _uint(buf, i, end)
+            if x < 0 or (bit == _V and x != 1):
+                return 0
+            if bit == _SEQ:
+                row[COL_SEQ] = x
+            elif bit == _RECV:
+                row[COL_RECV] = x
+        i = _skip_ws(buf, i, end)
+        if i >= end:
+            return 0
+        if buf[i] == 125:  # '}'
+            break
+        if buf[i] != 44:
+            return 0
+    if _skip_ws(buf, i + 1, end) != end or (seen & _REQUIRED) != _REQUIRED:
+        return 0
+    if live1 < live0 or live1 - live0 > MAX_LIVE_NS:
+        return 0
+    prev = live0
+    for k in range(t_used, t_used + n_t):
+        if t_out[k] < prev:
+            return 0
+        prev = t_out[k]
+    if n_t > 0 and prev >= live1:
+        return 0
+    row[COL_LIVE0] = live0
+    row[COL_LIVE1] = live1
+    row[COL_T_A] = t_used
+    row[COL_T_B] = t_used + n_t
+    row[COL_OK] = 1
+    return n_t
+
+
+@kernel
+def scan_lines(buf: np.ndarray, starts: I64Array, ends: I64Array) -> tuple[I64Array, I64Array]:
+    """Read lines ``buf[starts[k]:ends[k]]`` (uint8). Returns the (lines, N_COLS)
+    column matrix (``COL_*``; ``COL_OK`` 0 for a line handed back) and the hit times
+    of the lines taken, each line's at ``[COL_T_A, COL_T_B)``."""
+    n = starts.size
+    rows = np.zeros((n, N_COLS), dtype=np.int64)
+    # a hit time takes at least two bytes (a digit and a separator)
+    t_out = np.empty(buf.size // 2 + 1, dtype=np.int64)
+    used = 0
+    for k in range(n):
+        used += _scan_one(buf, starts[k], ends[k], rows[k], t_out, used)
+    return rows, t_out[:used]
+
+
+def decode_lines(
+    lines: Sequence[bytes], registry: SiteRegistry, line_nos: Sequence[int]
+) -> list[HitBatch | Rejected]:
+    """``[decode_line(x, registry, line_no=k) for x, k in zip(lines, line_nos)]``,
+    the plain lines read by one compiled pass (module doc), the others the ordinary
+    way. Each taken batch's hit times are a read-only view into one array per call."""
+    n = len(lines)
+    if n == 0:
+        return []
+    sizes = np.fromiter(map(len, lines), dtype=np.int64, count=n)
+    ends = np.cumsum(sizes + 1) - 1  # lines joined by one byte each
+    starts = ends - sizes
+    joined = b"\n".join(lines)
+    rows, t_all = scan_lines(np.frombuffer(joined, dtype=np.uint8), starts, ends)
+    t_all.flags.writeable = False
+    by_name = registry.ids_by_bytes
+    out: list[HitBatch | Rejected] = []
+    append = out.append
+    # column by column: a list per row would be thousands of containers for the
+    # garbage collector to visit
+    cols = rows.T.tolist()
+    columns = zip(
+        cols[COL_OK],
+        cols[COL_SITE_A],
+        cols[COL_SITE_B],
+        cols[COL_SEQ],
+        cols[COL_LIVE0],
+        cols[COL_LIVE1],
+        cols[COL_RECV],
+        cols[COL_T_A],
+        cols[COL_T_B],
+        strict=True,
+    )
+    for k, (ok, a, b, seq, l0, l1, recv, ta, tb) in enumerate(columns):
+        known = by_name.get(joined[a:b]) if ok else None
+        if known is None:
+            append(decode_line(lines[k], registry, line_no=line_nos[k]))
+        else:
+            site, index = known
+            append(
+                HitBatch(site, index, seq, l0, l1, t_all[ta:tb], None, None if recv < 0 else recv)
+            )
+    return out
