@@ -280,7 +280,8 @@ def run_engine(engine: Engine, blocks: list[Block]) -> int:
 
 def run_replay(pipe: Pipeline, lines: list[bytes]) -> float:
     """``tocsin replay``'s loop without the file: freeze what exists out of the garbage
-    collector's passes and feed the numbered lines (``Pipeline.feed``), then flush.
+    collector's passes (again: the lines are new) and feed the numbered lines
+    (``Pipeline.feed``), then flush.
     Returns the time (s) the end-of-input flush took: the engine then closes every
     window that reaches the end of the data, up to the longest excess window plus
     the longest scale later (a fixed cost per replay, whatever its length)."""
@@ -434,6 +435,10 @@ def main(argv: list[str] | None = None) -> int:
         threaded_engine = copy.deepcopy(engine, {id(registry): registry})
         threaded_engine.threads = n_threads
     print(f"setup {time.perf_counter() - t_setup - t_w:.1f} s, warm-up {t_w:.1f} s (untimed)")
+
+    # What exists now (modules, registry, tables, data) lives to the end: out of the
+    # garbage collector's full passes for every row, as ``tocsin replay`` does.
+    gc.freeze()
 
     # ---- 1. engine ----------------------------------------------------------------
     seeds_before = engine.counters.seeds_evaluated

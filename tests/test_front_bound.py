@@ -202,3 +202,62 @@ def test_rows_skipped_against_the_limit_change_no_reported_bound() -> None:
         limit = float(np.quantile(finite, q))
         want = np.where(full <= limit, full, np.inf)
         assert np.array_equal(bounds(limit), want), q
+
+
+# Clock sigmas (ns) of site pairs whose slot edge -ceil(3 sqrt(a^2 + b^2)) the table
+# holds as an integer computed one way (numpy: 3 * sqrt(a^2 + b^2) = 72.0) while the
+# kernel's own way (sqrt((3a)^2 + (3b)^2) = 72.00000000000001) rounds past it: the
+# kernel must read these edges from the table. Found by a search over random pairs.
+EDGE_PAIRS = [
+    (16.78161797807326, 17.15742690609546),
+    (16.164961528930114, 31.418759733838222),
+    (27.653269596422295, 18.008239242846216),
+]
+
+
+def test_slot_edges_computed_in_the_kernel_equal_the_pair_table() -> None:
+    """The screen computes each neighbour's slot edges from the positions and clocks
+    instead of reading the 8 MB pair table (a cache miss per hit). Its bounds must be
+    those it gives reading every edge from the table, on a network with pairs whose
+    edges lie on an integer (where the computed ceiling would be one too high)."""
+    from tocsin.engine.front_bound import front_lower_bounds
+
+    base = dense_array()
+    sigmas = [x for pair in EDGE_PAIRS for x in pair]
+    reg = SiteRegistry(
+        [
+            s.model_copy(update={"clock_sigma_ns": sigmas[k]}) if k < len(sigmas) else s
+            for k, s in enumerate(base)
+        ]
+    )
+    cfg = CoincidenceConfig()
+    k_sig = cfg.clock_sigmas
+    for a, b in EDGE_PAIRS:  # the pairs really are on the edge
+        table_way = k_sig * float(np.sqrt(np.float64(a) ** 2 + np.float64(b) ** 2))
+        kernel_way = float(np.sqrt((k_sig * a) ** 2 + (k_sig * b) ** 2))
+        assert np.ceil(table_way) != np.ceil(kernel_way)
+    search = FrontSearch(reg, cfg)
+    t, s = stream(reg)
+    s64 = s.astype(np.int64)
+    wide = int(search.widest.max())
+    geo = search._geo
+
+    def bounds(g: front.FrontGeometry, from_table: bool) -> np.ndarray:
+        out: np.ndarray = front_lower_bounds(
+            t,
+            s64,
+            t,
+            s64,
+            search.back_ns,
+            search.ahead_ns[wide],
+            front.K_MAX,
+            wide,
+            g,
+            np.inf,
+            from_table,
+        )
+        return out
+
+    computed = bounds(geo, False)
+    assert np.isfinite(computed).sum() > 500
+    assert np.array_equal(computed, bounds(geo, True))

@@ -51,6 +51,9 @@ BOUND_MARGIN = 1.0e-6
 """Relative margin on ``p_max`` before a seed is screened out (rounding only)."""
 
 _NO_BOUND = math.inf
+EDGE_NS = 1.0e-6
+"""A slot edge computed within this (ns) of an integer is read from the pair table
+(:func:`_seed_bounds`)."""
 
 
 class FrontGeometry(NamedTuple):
@@ -113,12 +116,14 @@ def _seed_bounds(
     wide: int,
     geo: FrontGeometry,
     limit: float,
+    from_table: bool,
 ) -> None:
     """Lower bounds (module doc) of one seed at site ``s`` into ``out_row`` (F,), from
     its ``kk`` neighbour hits at sites ``nbs[:kk]`` with delays ``nbd[:kk]`` (ns).
     ``buf`` (15, K), ``flags`` (3, K), ``cand`` (K,), ``slot_w`` (F, K) and
-    ``slot_in`` (F, K) are scratch space (K >= kk)."""
-    ecef, up, sigma, pair_ns, scales_ns = geo.ecef, geo.up, geo.sigma, geo.pair_ns, geo.scales_ns
+    ``slot_in`` (F, K) are scratch space (K >= kk). ``from_table``: read every slot
+    edge from the pair table (the reference the computed edges are tested against)."""
+    ecef, up, sigma, scales_ns = geo.ecef, geo.up, geo.sigma, geo.scales_ns
     tol_base_ns, k_sig = geo.tol_base_ns, geo.k_sig
     min_angle_deg, horizon_slack = geo.min_angle_deg, geo.horizon_slack
     c = C_M_PER_NS
@@ -131,6 +136,8 @@ def _seed_bounds(
     others, cons = flags[0], flags[2]
     ups0, ups1, ups2 = up[s, 0], up[s, 1], up[s, 2]
     ss = sigma[s]
+    pos, k_sigma, pair_ns = geo.pos_ns, geo.k_sigma_ns, geo.pair_ns
+    px, py, pz, k_s = pos[s, 0], pos[s, 1], pos[s, 2], k_sigma[s]
     # per neighbour hit, once per seed: baseline, local up, clock variance, and per
     # scale whether it is in its slot and the slot's full width
     for col in range(kk):
@@ -143,8 +150,26 @@ def _seed_bounds(
         upz[col] = up[site_l, 2]
         sig2[col] = sigma[site_l] ** 2
         blen[col] = math.sqrt(blx[col] ** 2 + bly[col] ** 2 + blz[col] ** 2)
-        lo_l = float(pair_ns[s, site_l, 0])
-        base_l = float(pair_ns[s, site_l, 1])
+        if from_table:
+            lo_l = float(pair_ns[s, site_l, 0])
+            base_l = float(pair_ns[s, site_l, 1])
+        else:
+            # The slot edges -ceil(k sigma_pair) and ceil(light + k sigma_pair) from the
+            # positions and clocks: the pair table is 8 MB at 1000 sites, and a read
+            # of it a cache miss per neighbour hit. The computed values agree with
+            # the table's to ~1e-9 ns, so their ceilings agree unless one lies within
+            # EDGE_NS of an integer; that edge is read from the table.
+            ks = math.sqrt(k_s * k_s + k_sigma[site_l] * k_sigma[site_l])
+            dx, dy, dz = px - pos[site_l, 0], py - pos[site_l, 1], pz - pos[site_l, 2]
+            x_hi = math.sqrt(dx * dx + dy * dy + dz * dz) + ks
+            c_lo = float(math.ceil(ks))
+            c_hi = float(math.ceil(x_hi))
+            if c_lo - ks < EDGE_NS or ks - (c_lo - 1.0) < EDGE_NS:
+                c_lo = -float(pair_ns[s, site_l, 0])
+            if c_hi - x_hi < EDGE_NS or x_hi - (c_hi - 1.0) < EDGE_NS:
+                c_hi = float(pair_ns[s, site_l, 1])
+            lo_l = -c_lo
+            base_l = c_hi
         for f in range(wide + 1):
             hi_f = base_l + scales_ns[f]
             slot_in[f, col] = nbd[col] <= hi_f
@@ -308,6 +333,7 @@ def front_lower_bounds(
     wide: int,
     geo: FrontGeometry,
     limit: float,
+    from_table: bool = False,
 ) -> F64Array:
     """Lower bound ``B`` (module doc) per seed and front scale where it is at most
     ``limit``; ``inf`` elsewhere, and where the seed has fewer than three other sites
@@ -319,7 +345,8 @@ def front_lower_bounds(
     t_seed + ahead_ns]`` at other sites inside their slot at scale ``wide``
     (``lo <= delay <= hi[wide]``), the earliest ``k_max`` of them. ``geo``: the
     network (:class:`FrontGeometry`); triples are solved with the tolerance of scale
-    ``wide``, as the exact search does.
+    ``wide``, as the exact search does. ``from_table``: every slot edge read from
+    ``geo.pair_ns`` rather than computed (same results; for tests).
     """
     n_seed = t_seed.size
     ecef, pair_ns, scales_ns = geo.ecef, geo.pair_ns, geo.scales_ns
@@ -392,6 +419,7 @@ def front_lower_bounds(
             wide,
             geo,
             limit,
+            from_table,
         )
     return out
 
