@@ -24,20 +24,13 @@ before it is final and goes to the engine as one :class:`Block`.
 
 from __future__ import annotations
 
-import operator
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from tocsin.engine.block import Block
-from tocsin.model.batch import HitBatch
-from tocsin.types import GpsNs
-
-_SITE_INDEX = operator.attrgetter("site_index")
-_LIVE_START = operator.attrgetter("live_start")
-_LIVE_END = operator.attrgetter("live_end")
-_SEQ = operator.attrgetter("seq")
-_RECV = operator.attrgetter("recv_ns")
+from tocsin.model.batch import NO_RECV, BatchColumns, HitBatch
+from tocsin.types import GpsNs, I64Array
 
 SEQ_MEMORY = 1 << 16
 """How many recent sequence numbers per site are remembered for duplicate detection."""
@@ -85,7 +78,9 @@ class Orderer:
         self.lateness_ns = lateness_ns
         self.watermark: GpsNs | None = None
         self._now: GpsNs | None = None
-        self._pending: list[HitBatch] = []
+        self._pending: list[HitBatch | BatchColumns] = []
+        """Accepted batches not yet released, in arrival order: single batches, and
+        runs taken by :meth:`take_columns`."""
         self._seq = [SiteSeqState() for _ in range(n_sites)]
         self.n_duplicate = 0
         self.n_late = 0
@@ -120,40 +115,34 @@ class Orderer:
         self.n_accepted += 1
         return Verdict("accepted", new_gaps) if new_gaps else _ACCEPTED
 
-    def take_run(self, batches: list[HitBatch]) -> int:
-        """Take the longest leading run of ``batches`` that :meth:`offer` would accept
-        one by one with nothing else happening: no duplicate, no late batch, no new or
-        filled gap (each site's ``seq`` one more than its last), no trimming of the
-        remembered sequence numbers, and no arrival that would move the watermark
-        (:meth:`release` returns None after each). Returns how many were taken (0
-        before the first release); the state is then exactly as after offering them
-        one by one. Replay's bulk intake: a run of thousands of batches costs a few
-        numpy passes instead of a Python call each."""
-        m = len(batches)
+    def take_columns(self, cols: BatchColumns, lo: int, hi: int) -> int:
+        """Take the longest leading run of batches ``lo .. hi - 1`` of ``cols`` that
+        :meth:`offer` would accept one by one with nothing else happening: no
+        duplicate, no late batch, no new or filled gap (each site's ``seq`` one more
+        than its last), no trimming of the remembered sequence numbers, and no
+        arrival that would move the watermark (:meth:`release` returns None after
+        each). Returns how many were taken (0 before the first release); the state is
+        then exactly as after offering them one by one. Replay's bulk intake: a run
+        of thousands of batches costs a few numpy passes instead of a Python call
+        each."""
+        m = hi - lo
         wm = self.watermark
-        if m == 0 or wm is None or self._now is None:
+        if m <= 0 or wm is None or self._now is None:
             return 0
-        recv_list = list(map(_RECV, batches))
-        if None in recv_list:
-            recv_list = [
-                b.live_end if r is None else r for b, r in zip(batches, recv_list, strict=True)
-            ]
-        now = np.maximum.accumulate(np.array(recv_list, dtype=np.int64))
+        recv = cols.recv[lo:hi]
+        now = np.maximum.accumulate(np.where(recv == NO_RECV, cols.live_end[lo:hi], recv))
         np.maximum(now, self._now, out=now)
         lag = now - self.lateness_ns
         stop = _first(lag - lag % self.quantum_ns > wm, m)  # would release
-        starts = np.fromiter(map(_LIVE_START, batches), dtype=np.int64, count=m)
-        stop = min(stop, _first(starts < np.maximum(lag, wm), m))  # late
+        stop = min(stop, _first(cols.live_start[lo:hi] < np.maximum(lag, wm), m))  # late
         if stop == 0:
             return 0
-        sites = np.fromiter(map(_SITE_INDEX, batches[:stop]), dtype=np.int64, count=stop)
-        seqs = np.fromiter(map(_SEQ, batches[:stop]), dtype=np.int64, count=stop)
+        sites = cols.site[lo : lo + stop]
         order = np.argsort(sites, kind="stable")
-        ss, qs = sites[order], seqs[order]
+        ss, qs = sites[order], cols.seq[lo : lo + stop][order]
         head = np.ones(stop, dtype=bool)
         head[1:] = ss[1:] != ss[:-1]
-        present = ss[head]
-        states = [self._seq[k] for k in present.tolist()]
+        states = [self._seq[k] for k in ss[head].tolist()]
         last = np.array([st.max_seq for st in states], dtype=np.int64)
         expect = np.empty(stop, dtype=np.int64)
         expect[1:] = qs[:-1] + 1
@@ -165,12 +154,9 @@ class Orderer:
         room = np.array([2 * SEQ_MEMORY - len(st.seen) for st in states], dtype=np.int64)
         rank = np.arange(stop) - np.flatnonzero(head)[group]  # position within its site
         bad |= rank >= room[group]
-        if bad.any():
-            stop = int(order[bad].min())
-            if stop == 0:
-                return 0
-            return self.take_run(batches[:stop])
-        self._pending.extend(batches[:stop])
+        if bad.any():  # the run ends before the first batch that needs a decision
+            return self.take_columns(cols, lo, lo + int(order[bad].min()))
+        self._pending.append(cols.rows(lo, lo + stop))
         self.n_accepted += stop
         self._now = int(now[stop - 1])
         firsts = qs[head].tolist()
@@ -221,9 +207,19 @@ class Orderer:
 
     def data_end(self) -> GpsNs | None:
         """The latest of the watermark and the end of any pending live interval (ns)."""
-        ends = [b.live_end for b in self._pending]
+        end = self._pending_end()
         if self.watermark is not None:
-            ends.append(self.watermark)
+            end = self.watermark if end is None else max(end, self.watermark)
+        return end
+
+    def _pending_end(self) -> GpsNs | None:
+        """The latest live end of the pending batches (None: nothing pending)."""
+        ends: list[int] = []
+        for p in self._pending:
+            if type(p) is HitBatch:
+                ends.append(p.live_end)
+            elif len(p):
+                ends.append(int(p.live_end.max()))  # type: ignore[union-attr]
         return GpsNs(max(ends)) if ends else None
 
     def release_through(self, w: GpsNs) -> Block | None:
@@ -232,49 +228,72 @@ class Orderer:
 
     def flush(self) -> Block | None:
         """Release everything pending (end of input)."""
-        if not self._pending:
-            return None
-        end = max(b.live_end for b in self._pending)
-        return self._release_to(end)
+        end = self._pending_end()
+        return None if end is None else self._release_to(end)
+
+    def _columns(self) -> BatchColumns:
+        """Every pending batch, in arrival order, as one column set."""
+        groups: list[BatchColumns] = []
+        singles: list[HitBatch] = []
+        for p in self._pending:
+            if type(p) is HitBatch:
+                singles.append(p)
+                continue
+            if singles:
+                groups.append(BatchColumns.of(singles))
+                singles = []
+            groups.append(p)  # type: ignore[arg-type]
+        if singles or not groups:
+            groups.append(BatchColumns.of(singles))
+        return BatchColumns.join(groups)
 
     def _release_to(self, w: GpsNs) -> Block | None:
         if self.watermark is None:
             if not self._pending:
                 return None
-            self.watermark = min(b.live_start for b in self._pending)
+            self.watermark = GpsNs(int(self._columns().live_start.min()))
         if w <= self.watermark:
             return None
         w0 = self.watermark
-        pend = self._pending
-        n = len(pend)
-        starts = np.fromiter(map(_LIVE_START, pend), dtype=np.int64, count=n)
-        ends = np.fromiter(map(_LIVE_END, pend), dtype=np.int64, count=n)
+        c = self._columns()
+        starts, ends, t = c.live_start, c.live_end, c.t
         taken = starts < w
         take_idx = np.flatnonzero(taken)
-        # batches not begun by w stay pending, in arrival order; the rest of a batch
-        # that straddles w follows them
-        keep = [pend[i] for i in np.flatnonzero(~taken).tolist()]
-        take = [pend[i] for i in take_idx.tolist()]
-        ts = [b.t for b in take]
-        for k in np.flatnonzero(ends[take_idx] > w).tolist():
-            b = take[k]
-            cut = int(np.searchsorted(b.t, w, side="left"))
-            ts[k] = b.t[:cut]
-            keep.append(
-                HitBatch(b.site, b.site_index, b.seq, w, b.live_end, b.t[cut:], None, b.recv_ns)
-            )
-        ls = np.fromiter(map(_SITE_INDEX, take), dtype=np.int32, count=len(take))
-        self._pending = keep
-        self.watermark = w
-        if ts:
-            t_all = np.concatenate(ts)
-            sizes = np.fromiter(map(len, ts), dtype=np.int64, count=len(ts))
-            s_all = np.repeat(ls, sizes)
+        ta = c.t_a[take_idx]
+        # each taken batch's hits before w (all of them unless it straddles w)
+        below = np.zeros(t.size + 1, dtype=np.int64)
+        np.cumsum(t < w, out=below[1:])
+        cut = ta + (below[c.t_b[take_idx]] - below[ta])
+        sizes = cut - ta
+        ls = c.site[take_idx].astype(np.int32)
+        t_all = t[_ranges(ta, sizes)]
+        s_all = np.repeat(ls, sizes)
+        if t_all.size:
             order = np.argsort(t_all, kind="stable")
             t_all, s_all = t_all[order], s_all[order]
-        else:
-            t_all = np.zeros(0, dtype=np.int64)
-            s_all = np.zeros(0, dtype=np.int32)
+        # batches not begun by w stay pending, in arrival order; the rest of a batch
+        # that straddles w follows them
+        rest = ends[take_idx] > w
+        keep_idx = np.concatenate([np.flatnonzero(~taken), take_idx[rest]])
+        n_wait = keep_idx.size - int(rest.sum())
+        keep_a = np.concatenate([c.t_a[keep_idx[:n_wait]], cut[rest]])
+        keep_b = c.t_b[keep_idx]
+        keep_sizes = keep_b - keep_a
+        keep_start = starts[keep_idx]
+        keep_start[n_wait:] = w
+        kept_t_b = np.cumsum(keep_sizes)
+        kept = BatchColumns(
+            c.site[keep_idx],
+            c.seq[keep_idx],
+            keep_start,
+            ends[keep_idx],
+            c.recv[keep_idx],
+            kept_t_b - keep_sizes,
+            kept_t_b,
+            t[_ranges(keep_a, keep_sizes)],  # only the hits still pending
+        )
+        self._pending = [kept] if len(kept) else []
+        self.watermark = w
         return Block(
             w0,
             w,
@@ -284,3 +303,13 @@ class Orderer:
             np.maximum(starts[take_idx], w0),
             np.minimum(ends[take_idx], w),
         )
+
+
+def _ranges(start: I64Array, size: I64Array) -> I64Array:
+    """Indices ``start[0] .. start[0] + size[0] - 1``, then those of the next range, ..."""
+    total = int(size.sum())
+    if total == 0:
+        return np.zeros(0, dtype=np.int64)
+    first = np.cumsum(size) - size
+    out: I64Array = np.repeat(start - first, size) + np.arange(total, dtype=np.int64)
+    return out

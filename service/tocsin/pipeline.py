@@ -9,24 +9,23 @@ same arrivals give the same blocks and the same candidates.
 from __future__ import annotations
 
 import itertools
-import operator
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any, NamedTuple
 
+import numpy as np
+
 from tocsin.engine.block import Block
 from tocsin.engine.core import Engine
-from tocsin.io.line_scan import decode_lines
+from tocsin.io.line_scan import scan_chunk
 from tocsin.io.recording import Rejected
-from tocsin.model.batch import HitBatch
+from tocsin.model.batch import BatchColumns, HitBatch
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
 from tocsin.ordering import Orderer
 from tocsin.types import NS_PER_S, GpsNs
-
-_T = operator.attrgetter("t")
 
 REPLAY_BLOCK_S = 16.0
 """Blocks handed to the engine (s) when a recording is replayed (replay, tuning): long
@@ -118,37 +117,52 @@ class Pipeline:
 
     def offer_many(self, items: Sequence[HitBatch | Rejected]) -> list[Candidate]:
         """:meth:`offer` each item in turn; the same candidates, counters and engine
-        state. Runs of batches the orderer can take without a decision of its own
-        (:meth:`Orderer.take_run`) are taken in one step; the rest go one by one."""
+        state. Runs of batches go through :meth:`offer_columns`."""
         out: list[Candidate] = []
-        c = self.counters
         n = len(items)
         i = 0
         while i < n:
             j = i
             while j < n and type(items[j]) is HitBatch:
                 j += 1
-            run = items[i:j]
-            taken = self.orderer.take_run(run) if len(run) > 1 else 0  # type: ignore[arg-type]
+            if j > i:
+                run = BatchColumns.of(items[i:j])  # type: ignore[arg-type]
+                out += self.offer_columns(run, 0, j - i)
+            if j < n:
+                out += self.offer(items[j])
+            i = j + 1
+        return out
+
+    def offer_columns(self, cols: BatchColumns, lo: int, hi: int) -> list[Candidate]:
+        """:meth:`offer` batches ``lo .. hi - 1`` of ``cols`` in turn; the same
+        candidates, counters and engine state. Runs the orderer can take without a
+        decision of its own (:meth:`Orderer.take_columns`) are taken in one step;
+        the batch that ends a run goes alone."""
+        out: list[Candidate] = []
+        c = self.counters
+        while lo < hi:
+            taken = self.orderer.take_columns(cols, lo, hi)
             if taken:
                 c.batches += taken
                 c.accepted += taken
-                c.hits_accepted += sum(map(len, map(_T, run[:taken])))
+                c.hits_accepted += int(
+                    (cols.t_b[lo : lo + taken] - cols.t_a[lo : lo + taken]).sum()
+                )
                 self.last_status = "accepted"
                 self.last_new_gaps = 0
-                i += taken
+                lo += taken
             else:
-                out += self.offer(items[i])
-                i += 1
+                out += self.offer(cols.batch(lo, self.registry.ids))
+                lo += 1
         return out
 
     def feed(self, lines: Iterable[tuple[int, bytes]]) -> Iterator[Fed]:
         """Replay's intake: numbered recording lines (stripped, not empty) in, read
         :data:`FEED_CHUNK_LINES` at a time by one compiled pass
-        (:func:`~tocsin.io.line_scan.decode_lines`) and offered with
-        :meth:`offer_many`; one :class:`Fed` per chunk. The same candidates, in the
-        same order, as ``offer(decode_line(line))`` line by line. Call :meth:`finish`
-        at the end of input."""
+        (:func:`~tocsin.io.line_scan.scan_chunk`) and offered in line order, the plain
+        batches through :meth:`offer_columns`; one :class:`Fed` per chunk. The same
+        candidates, in the same order, as ``offer(decode_line(line))`` line by line.
+        Call :meth:`finish` at the end of input."""
         chunk: list[bytes] = []
         nos: list[int] = []
         it = iter(lines)
@@ -160,9 +174,19 @@ class Pipeline:
                 chunk.append(line)
             if not chunk:
                 return
-            items = decode_lines(chunk, self.registry, nos)
-            bad = [x for x in items if type(x) is Rejected]
-            yield Fed(bad, self.offer_many(items), nos[-1])
+            scan = scan_chunk(chunk, self.registry, nos)
+            out: list[Candidate] = []
+            bad: list[Rejected] = []
+            row = 0
+            for pos, item in scan.others:
+                upto = int(np.searchsorted(scan.row_pos, pos))
+                out += self.offer_columns(scan.cols, row, upto)
+                row = upto
+                if type(item) is Rejected:
+                    bad.append(item)
+                out += self.offer(item)
+            out += self.offer_columns(scan.cols, row, len(scan.cols))
+            yield Fed(bad, out, nos[-1])
 
     def tick(self, now_ns: int) -> list[Candidate]:
         """Advance the watermark on an idle timer (live service).

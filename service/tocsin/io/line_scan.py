@@ -31,12 +31,13 @@ two to that on generated and mutated lines.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import NamedTuple
 
 import numpy as np
 
 from tocsin.engine.jit import kernel
 from tocsin.io.recording import Rejected, decode_line
-from tocsin.model.batch import MAX_HITS_PER_BATCH, MAX_LIVE_NS, HitBatch
+from tocsin.model.batch import MAX_HITS_PER_BATCH, MAX_LIVE_NS, NO_RECV, BatchColumns, HitBatch
 from tocsin.model.registry import SiteRegistry
 from tocsin.types import I64Array
 
@@ -52,8 +53,6 @@ _REQUIRED = _V | _SITE | _SEQ | _LIVE | _T
 COL_OK, COL_SITE_A, COL_SITE_B, COL_SEQ, COL_LIVE0, COL_LIVE1 = 0, 1, 2, 3, 4, 5
 COL_RECV, COL_T_A, COL_T_B = 6, 7, 8
 N_COLS = 9
-NO_RECV = -1
-"""``COL_RECV`` of a line without ``recv_ns``."""
 
 
 @kernel
@@ -252,46 +251,74 @@ def scan_lines(buf: np.ndarray, starts: I64Array, ends: I64Array) -> tuple[I64Ar
     return rows, t_out[:used]
 
 
-def decode_lines(
+class ScannedChunk(NamedTuple):
+    """A chunk of lines after :func:`scan_chunk`."""
+
+    cols: BatchColumns
+    """The batches of the lines the compiled pass took, in line order."""
+    row_pos: I64Array
+    """Position in the chunk of each line in ``cols``."""
+    others: list[tuple[int, HitBatch | Rejected]]
+    """(position, :func:`decode_line`'s answer) for every other line, in order."""
+
+
+def scan_chunk(
     lines: Sequence[bytes], registry: SiteRegistry, line_nos: Sequence[int]
-) -> list[HitBatch | Rejected]:
-    """``[decode_line(x, registry, line_no=k) for x, k in zip(lines, line_nos)]``,
-    the plain lines read by one compiled pass (module doc), the others the ordinary
-    way. Each taken batch's hit times are a read-only view into one array per call."""
+) -> ScannedChunk:
+    """Read ``lines`` (numbered ``line_nos``): the plain ones by one compiled pass into
+    columns, the others by :func:`decode_line` (module doc). No Python object is made
+    per plain line."""
     n = len(lines)
-    if n == 0:
-        return []
     sizes = np.fromiter(map(len, lines), dtype=np.int64, count=n)
     ends = np.cumsum(sizes + 1) - 1  # lines joined by one byte each
     starts = ends - sizes
     joined = b"\n".join(lines)
     rows, t_all = scan_lines(np.frombuffer(joined, dtype=np.uint8), starts, ends)
     t_all.flags.writeable = False
-    by_name = registry.ids_by_bytes
-    out: list[HitBatch | Rejected] = []
-    append = out.append
-    # column by column: a list per row would be thousands of containers for the
-    # garbage collector to visit
-    cols = rows.T.tolist()
-    columns = zip(
-        cols[COL_OK],
-        cols[COL_SITE_A],
-        cols[COL_SITE_B],
-        cols[COL_SEQ],
-        cols[COL_LIVE0],
-        cols[COL_LIVE1],
-        cols[COL_RECV],
-        cols[COL_T_A],
-        cols[COL_T_B],
-        strict=True,
-    )
-    for k, (ok, a, b, seq, l0, l1, recv, ta, tb) in enumerate(columns):
-        known = by_name.get(joined[a:b]) if ok else None
-        if known is None:
-            append(decode_line(lines[k], registry, line_no=line_nos[k]))
-        else:
-            site, index = known
-            append(
-                HitBatch(site, index, seq, l0, l1, t_all[ta:tb], None, None if recv < 0 else recv)
+    ok = np.flatnonzero(rows[:, COL_OK])
+    index = registry.index_by_bytes.get
+    site = np.array(
+        [
+            index(joined[a:b], -1)
+            for a, b in zip(
+                rows[ok, COL_SITE_A].tolist(), rows[ok, COL_SITE_B].tolist(), strict=True
             )
-    return out
+        ],
+        dtype=np.int64,
+    )
+    known = site >= 0  # an unknown site is left to decode_line, which names it
+    row_pos = ok[known]
+    r = rows[row_pos]
+    cols = BatchColumns(
+        site[known],
+        r[:, COL_SEQ],
+        r[:, COL_LIVE0],
+        r[:, COL_LIVE1],
+        r[:, COL_RECV],
+        r[:, COL_T_A],
+        r[:, COL_T_B],
+        t_all,
+    )
+    taken = np.zeros(n, dtype=bool)
+    taken[row_pos] = True
+    others: list[tuple[int, HitBatch | Rejected]] = [
+        (k, decode_line(lines[k], registry, line_no=line_nos[k]))
+        for k in np.flatnonzero(~taken).tolist()
+    ]
+    return ScannedChunk(cols, row_pos, others)
+
+
+def decode_lines(
+    lines: Sequence[bytes], registry: SiteRegistry, line_nos: Sequence[int]
+) -> list[HitBatch | Rejected]:
+    """``[decode_line(x, registry, line_no=k) for x, k in zip(lines, line_nos)]``, by
+    way of :func:`scan_chunk`. Each taken batch's hit times are a read-only view into
+    one array per call."""
+    scan = scan_chunk(lines, registry, line_nos)
+    out: list[HitBatch | Rejected | None] = [None] * len(lines)
+    ids = registry.ids
+    for row, pos in enumerate(scan.row_pos.tolist()):
+        out[pos] = scan.cols.batch(row, ids)
+    for pos, item in scan.others:
+        out[pos] = item
+    return out  # type: ignore[return-value]

@@ -16,6 +16,7 @@ accepts.
 
 from __future__ import annotations
 
+import operator
 from typing import Annotated, Any, Literal, NamedTuple
 
 import numpy as np
@@ -294,3 +295,106 @@ def _checked_batch(
         amp=amp,
         recv_ns=recv_ns,
     )
+
+
+_T = operator.attrgetter("t")
+_SITE_INDEX = operator.attrgetter("site_index")
+_SEQ = operator.attrgetter("seq")
+_LIVE_START = operator.attrgetter("live_start")
+_LIVE_END = operator.attrgetter("live_end")
+_RECV = operator.attrgetter("recv_ns")
+
+
+class BatchColumns(NamedTuple):
+    """Many validated batches as columns, for bulk intake (replay): batch ``k`` is
+    site index ``site[k]``, ``seq[k]``, live ``[live_start[k], live_end[k])``, arrival
+    ``recv[k]`` (``NO_RECV``: none given) and hit times ``t[t_a[k]:t_b[k]]``. The
+    arrays may be views shared with other column sets; ``t`` is never written."""
+
+    site: I64Array
+    seq: I64Array
+    live_start: I64Array
+    live_end: I64Array
+    recv: I64Array
+    t_a: I64Array
+    t_b: I64Array
+    t: I64Array
+
+    def __len__(self) -> int:
+        return int(self.site.size)
+
+    def rows(self, lo: int, hi: int) -> BatchColumns:
+        """Batches ``lo .. hi - 1`` (views; ``t`` shared)."""
+        return BatchColumns(
+            self.site[lo:hi],
+            self.seq[lo:hi],
+            self.live_start[lo:hi],
+            self.live_end[lo:hi],
+            self.recv[lo:hi],
+            self.t_a[lo:hi],
+            self.t_b[lo:hi],
+            self.t,
+        )
+
+    def batch(self, k: int, ids: tuple[str, ...]) -> HitBatch:
+        """Batch ``k`` as a :class:`HitBatch` (``ids``: the registry's site ids)."""
+        s = int(self.site[k])
+        recv = int(self.recv[k])
+        return HitBatch(
+            ids[s],
+            s,
+            int(self.seq[k]),
+            int(self.live_start[k]),
+            int(self.live_end[k]),
+            self.t[int(self.t_a[k]) : int(self.t_b[k])],
+            None,
+            None if recv == NO_RECV else recv,
+        )
+
+    @staticmethod
+    def of(batches: list[HitBatch]) -> BatchColumns:
+        """Columns of ``batches`` (their hit times copied into one array)."""
+        n = len(batches)
+        ts = list(map(_T, batches))
+        t_b = np.cumsum(np.fromiter(map(len, ts), dtype=np.int64, count=n))
+        recv = [NO_RECV if r is None else r for r in map(_RECV, batches)]
+        return BatchColumns(
+            np.fromiter(map(_SITE_INDEX, batches), dtype=np.int64, count=n),
+            np.fromiter(map(_SEQ, batches), dtype=np.int64, count=n),
+            np.fromiter(map(_LIVE_START, batches), dtype=np.int64, count=n),
+            np.fromiter(map(_LIVE_END, batches), dtype=np.int64, count=n),
+            np.array(recv, dtype=np.int64),
+            np.concatenate([[0], t_b[:-1]]).astype(np.int64) if n else t_b,
+            t_b,
+            np.concatenate(ts) if n else np.zeros(0, dtype=np.int64),
+        )
+
+    @staticmethod
+    def join(parts: list[BatchColumns]) -> BatchColumns:
+        """All batches of ``parts``, in order, with one ``t`` (a hit array shared by
+        several parts is taken once)."""
+        if len(parts) == 1:
+            return parts[0]
+        base: dict[int, int] = {}
+        ts: list[I64Array] = []
+        size = 0
+        for p in parts:
+            if id(p.t) not in base:
+                base[id(p.t)] = size
+                ts.append(p.t)
+                size += p.t.size
+        offs = [base[id(p.t)] for p in parts]
+        return BatchColumns(
+            np.concatenate([p.site for p in parts]),
+            np.concatenate([p.seq for p in parts]),
+            np.concatenate([p.live_start for p in parts]),
+            np.concatenate([p.live_end for p in parts]),
+            np.concatenate([p.recv for p in parts]),
+            np.concatenate([p.t_a + o for p, o in zip(parts, offs, strict=True)]),
+            np.concatenate([p.t_b + o for p, o in zip(parts, offs, strict=True)]),
+            np.concatenate(ts),
+        )
+
+
+NO_RECV = -1
+"""``BatchColumns.recv`` of a batch that gave no arrival time."""

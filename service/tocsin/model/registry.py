@@ -66,10 +66,10 @@ class SiteRegistry:
         return self._index.get(site_id)
 
     @functools.cached_property
-    def ids_by_bytes(self) -> dict[bytes, tuple[SiteId, int]]:
-        """Each site id as UTF-8 bytes -> (id, index): a look-up of a name read from
-        raw bytes (:mod:`tocsin.io.line_scan`) without decoding it first."""
-        return {sid.encode(): (sid, k) for k, sid in enumerate(self.ids)}
+    def index_by_bytes(self) -> dict[bytes, int]:
+        """Each site id as UTF-8 bytes -> its index: a look-up of a name read from raw
+        bytes (:mod:`tocsin.io.line_scan`) without decoding it first."""
+        return {sid.encode(): k for k, sid in enumerate(self.ids)}
 
     def index(self, site_id: SiteId) -> int:
         """Integer index of ``site_id``; raises ``KeyError`` naming the id if unknown."""
