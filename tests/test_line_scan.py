@@ -17,7 +17,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tocsin.io.line_scan import COL_OK, decode_lines, scan_lines
+from tocsin.io.line_scan import COL_OK, decode_lines, name_table, scan_lines
 from tocsin.io.recording import Rejected, decode_line
 from tocsin.model.batch import MAX_LIVE_NS, HitBatch
 from tocsin.model.registry import Site, SiteRegistry
@@ -60,7 +60,8 @@ def taken(lines: list[bytes]) -> list[bool]:
     """Which lines the compiled pass takes itself (not handed back)."""
     sizes = np.array([len(x) for x in lines], dtype=np.int64)
     ends = np.cumsum(sizes + 1) - 1
-    rows, _ = scan_lines(np.frombuffer(b"\n".join(lines), dtype=np.uint8), ends - sizes, ends)
+    buf = np.frombuffer(b"\n".join(lines), dtype=np.uint8)
+    rows, _ = scan_lines(buf, ends - sizes, ends, *name_table(REG.ids))
     return [bool(r) for r in rows[:, COL_OK]]
 
 

@@ -19,6 +19,7 @@ import numpy as np
 from tocsin.engine.block import Block
 from tocsin.engine.core import Engine
 from tocsin.io.line_scan import scan_chunk
+from tocsin.io.line_scan import warm_up as warm_line_scan
 from tocsin.io.recording import Rejected
 from tocsin.model.batch import BatchColumns, HitBatch
 from tocsin.model.candidate import Candidate
@@ -90,6 +91,7 @@ class Pipeline:
             * max(1, round((release_every_s or 0.0) / cfg.rate.bin_s)),
         )
         self.counters = IntakeCounters()
+        warm_line_scan()
         self.last_status = ""
         """What became of the last batch offered: accepted, duplicate, late or a
         rejection reason."""
@@ -163,17 +165,12 @@ class Pipeline:
         batches through :meth:`offer_columns`; one :class:`Fed` per chunk. The same
         candidates, in the same order, as ``offer(decode_line(line))`` line by line.
         Call :meth:`finish` at the end of input."""
-        chunk: list[bytes] = []
-        nos: list[int] = []
         it = iter(lines)
         while True:
-            chunk.clear()
-            nos.clear()
-            for no, line in itertools.islice(it, FEED_CHUNK_LINES):
-                nos.append(no)
-                chunk.append(line)
-            if not chunk:
+            part = list(itertools.islice(it, FEED_CHUNK_LINES))
+            if not part:
                 return
+            nos, chunk = zip(*part, strict=True)
             scan = scan_chunk(chunk, self.registry, nos)
             out: list[Candidate] = []
             bad: list[Rejected] = []

@@ -20,7 +20,7 @@ holds, and otherwise handed back:
 * ``live`` at most :data:`~tocsin.model.batch.MAX_LIVE_NS` long, not ending before
   it starts; hit times ascending inside it; at most
   :data:`~tocsin.model.batch.MAX_HITS_PER_BATCH` hits;
-* and (checked in Python) a site the registry knows.
+* and a site the registry knows (looked up in the same pass).
 
 Every such line is one that ``decode_line`` accepts as the same batch (the same
 site, sequence number, live interval, hit times and arrival time): the rules above
@@ -30,6 +30,7 @@ two to that on generated and mutated lines.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from typing import NamedTuple
 
@@ -51,8 +52,8 @@ _REQUIRED = _V | _SITE | _SEQ | _LIVE | _T
 
 # per-line columns of the result (int64 matrix)
 COL_OK, COL_SITE_A, COL_SITE_B, COL_SEQ, COL_LIVE0, COL_LIVE1 = 0, 1, 2, 3, 4, 5
-COL_RECV, COL_T_A, COL_T_B = 6, 7, 8
-N_COLS = 9
+COL_RECV, COL_T_A, COL_T_B, COL_SITE = 6, 7, 8, 9
+N_COLS = 10
 
 
 @kernel
@@ -237,18 +238,87 @@ def _scan_one(
 
 
 @kernel
-def scan_lines(buf: np.ndarray, starts: I64Array, ends: I64Array) -> tuple[I64Array, I64Array]:
+def _compare(buf: np.ndarray, a: int, b: int, names: np.ndarray, na: int, nb: int) -> int:
+    """-1, 0 or 1 as the bytes ``buf[a:b]`` sort before, equal or after ``names[na:nb]``
+    (as Python compares bytes)."""
+    n1 = b - a
+    n2 = nb - na
+    for i in range(min(n1, n2)):
+        x = buf[a + i]
+        y = names[na + i]
+        if x != y:
+            return -1 if x < y else 1
+    return (n1 > n2) - (n1 < n2)
+
+
+@kernel
+def _site_index(
+    buf: np.ndarray, a: int, b: int, names: np.ndarray, n_a: I64Array, n_b: I64Array, idx: I64Array
+) -> int:
+    """Index of the site whose name is ``buf[a:b]`` (binary search of the sorted names
+    ``names[n_a[k]:n_b[k]]``, whose site indices are ``idx``); -1 for none."""
+    lo = 0
+    hi = idx.size
+    while lo < hi:
+        mid = (lo + hi) // 2
+        c = _compare(buf, a, b, names, n_a[mid], n_b[mid])
+        if c == 0:
+            return int(idx[mid])
+        if c > 0:
+            lo = mid + 1
+        else:
+            hi = mid
+    return -1
+
+
+@kernel
+def scan_lines(
+    buf: np.ndarray,
+    starts: I64Array,
+    ends: I64Array,
+    names: np.ndarray,
+    n_a: I64Array,
+    n_b: I64Array,
+    idx: I64Array,
+) -> tuple[I64Array, I64Array]:
     """Read lines ``buf[starts[k]:ends[k]]`` (uint8). Returns the (lines, N_COLS)
-    column matrix (``COL_*``; ``COL_OK`` 0 for a line handed back) and the hit times
-    of the lines taken, each line's at ``[COL_T_A, COL_T_B)``."""
+    column matrix (``COL_*``; ``COL_OK`` 0 for a line handed back, which includes a
+    site not among the sorted names ``names[n_a[k]:n_b[k]]``, whose site indices are
+    ``idx``: :func:`name_table`) and the hit times of the lines taken, each line's at
+    ``[COL_T_A, COL_T_B)``."""
     n = starts.size
     rows = np.zeros((n, N_COLS), dtype=np.int64)
     # a hit time takes at least two bytes (a digit and a separator)
     t_out = np.empty(buf.size // 2 + 1, dtype=np.int64)
     used = 0
     for k in range(n):
-        used += _scan_one(buf, starts[k], ends[k], rows[k], t_out, used)
+        row = rows[k]
+        got = _scan_one(buf, starts[k], ends[k], row, t_out, used)
+        if row[COL_OK]:
+            row[COL_SITE] = _site_index(buf, row[COL_SITE_A], row[COL_SITE_B], names, n_a, n_b, idx)
+            if row[COL_SITE] < 0:  # not a known site: handed back
+                row[COL_OK] = 0
+                got = 0
+        used += got
     return rows, t_out[:used]
+
+
+@functools.lru_cache(maxsize=8)
+def name_table(ids: tuple[str, ...]) -> tuple[np.ndarray, I64Array, I64Array, I64Array]:
+    """The site ids as :func:`scan_lines` looks them up: their UTF-8 bytes sorted and
+    joined, each one's start and end, and its site index."""
+    enc = sorted((sid.encode(), k) for k, sid in enumerate(ids))
+    size = np.array([len(e) for e, _ in enc], dtype=np.int64)
+    n_b = np.cumsum(size)
+    names = np.frombuffer(b"".join(e for e, _ in enc), dtype=np.uint8)
+    return names, n_b - size, n_b, np.array([k for _, k in enc], dtype=np.int64)
+
+
+def warm_up() -> None:
+    """Load (or compile) the kernel now, on a tiny input (see
+    :func:`tocsin.engine.slot_counts.warm_up`)."""
+    one = np.zeros(1, dtype=np.int64)
+    scan_lines(np.zeros(2, dtype=np.uint8), one, one + 1, *name_table(("a",)))
 
 
 class ScannedChunk(NamedTuple):
@@ -273,24 +343,14 @@ def scan_chunk(
     ends = np.cumsum(sizes + 1) - 1  # lines joined by one byte each
     starts = ends - sizes
     joined = b"\n".join(lines)
-    rows, t_all = scan_lines(np.frombuffer(joined, dtype=np.uint8), starts, ends)
-    t_all.flags.writeable = False
-    ok = np.flatnonzero(rows[:, COL_OK])
-    index = registry.index_by_bytes.get
-    site = np.array(
-        [
-            index(joined[a:b], -1)
-            for a, b in zip(
-                rows[ok, COL_SITE_A].tolist(), rows[ok, COL_SITE_B].tolist(), strict=True
-            )
-        ],
-        dtype=np.int64,
+    rows, t_all = scan_lines(
+        np.frombuffer(joined, dtype=np.uint8), starts, ends, *name_table(registry.ids)
     )
-    known = site >= 0  # an unknown site is left to decode_line, which names it
-    row_pos = ok[known]
+    t_all.flags.writeable = False
+    row_pos = np.flatnonzero(rows[:, COL_OK])
     r = rows[row_pos]
     cols = BatchColumns(
-        site[known],
+        r[:, COL_SITE],
         r[:, COL_SEQ],
         r[:, COL_LIVE0],
         r[:, COL_LIVE1],

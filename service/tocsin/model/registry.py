@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import functools
 import tomllib
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -64,12 +63,6 @@ class SiteRegistry:
     def index_or_none(self, site_id: str) -> int | None:
         """Integer index of ``site_id``, None if it is not a known site."""
         return self._index.get(site_id)
-
-    @functools.cached_property
-    def index_by_bytes(self) -> dict[bytes, int]:
-        """Each site id as UTF-8 bytes -> its index: a look-up of a name read from raw
-        bytes (:mod:`tocsin.io.line_scan`) without decoding it first."""
-        return {sid.encode(): k for k, sid in enumerate(self.ids)}
 
     def index(self, site_id: SiteId) -> int:
         """Integer index of ``site_id``; raises ``KeyError`` naming the id if unknown."""
