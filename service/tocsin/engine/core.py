@@ -14,6 +14,7 @@ from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from functools import partial
+from typing import Any
 
 import numpy as np
 
@@ -151,6 +152,26 @@ class Engine:
         """Start of the first block processed (GPS ns)."""
         self.last_rates_hz: F64Array | None = None
         """The latest per-site rate estimate (Hz; 0 for sites not taking part)."""
+
+    _DERIVED = ("coinc", "front", "_tables", "_bin_tables")
+    """Members rebuilt from the registry and configuration (slot geometry, pair
+    tables) or caches of rate tables: left out of a pickled engine (a checkpoint),
+    where at 1000 sites they were ~550 of its ~600 MB, and rebuilt on load. They are
+    fixed by the registry and configuration (which a checkpoint's key includes), and
+    the rate tables by the rates kept in the state, so the results do not change."""
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = dict(self.__dict__)
+        for name in self._DERIVED:
+            state.pop(name, None)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        self.coinc = CoincidenceTrigger(self.registry, self.cfg.coincidence)
+        self.front = FrontSearch(self.registry, self.cfg.coincidence)
+        self._tables = {}
+        self._bin_tables = {}
 
     # ------------------------------------------------------------------
     def process(self, block: Block) -> list[Candidate]:
