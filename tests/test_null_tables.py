@@ -110,3 +110,27 @@ def test_scales_near_the_redundancy_ratio_are_decided_as_exactly() -> None:
         n_skipped += n_active.count(False)
         assert any(n_active[1:])  # some later scale is fresh: the ratio test matters
     assert n_skipped > 0
+
+
+def test_slot_tables_kept_between_rate_epochs_equal_fresh_ones() -> None:
+    """A trigger keeps each scale's slot tables while the pattern of counted pairs
+    holds; rates that change the pattern (sites leaving, occupancy over the cap) must
+    give the tables a trigger that never saw the earlier rates builds."""
+    rng = np.random.default_rng(7)
+    reg = _registry(60, rng)
+    kept = CoincidenceTrigger(reg, CoincidenceConfig())
+    reused = 0
+    for kind in (0, 0, 1, 1, 0, 2, 2, 0, 1, 0):
+        rates = np.full(60, 1.0) * rng.uniform(0.8, 1.2, 60)
+        ok = np.ones(60, dtype=bool)
+        if kind == 1:
+            ok[rng.choice(60, 5, replace=False)] = False  # some sites leave
+        if kind == 2:
+            rates[rng.choice(60, 3, replace=False)] = 1e4  # busy: over the occupancy cap
+        before = {k: v[1] for k, v in kept._slot_cache.items()}
+        got = kept.tables(rates, ok, ok)
+        _same(got, CoincidenceTrigger(reg, CoincidenceConfig()).tables(rates, ok, ok))
+        reused += sum(
+            s.slots is before.get(k) for k, s in enumerate(got.scales) if s.slots is not None
+        )
+    assert reused > 0  # the kept tables were used

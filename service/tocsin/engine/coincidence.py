@@ -287,10 +287,14 @@ class CoincidenceTrigger:
         self.n_sites = len(registry)
         n = self.n_sites
         not_self = ~np.eye(n, dtype=bool)
+        self._not_self = not_self
+        """(N, N): False on the diagonal (a seed's own site is not its neighbour)."""
         self._mean_w = [(w * not_self).sum(axis=1) / max(n - 1, 1) for w in self.geom.width]
         """Per scale, each seed site's mean slot width (ns) over the other sites."""
         self._max_w = [float((w * not_self).max()) if n > 1 else 0.0 for w in self.geom.width]
         """Per scale, the widest slot (ns) between two different sites."""
+        self._slot_cache: dict[int, tuple[bytes, SlotTables]] = {}
+        """Per scale, the pattern of counted pairs and the slot tables last built."""
         self.skip_by_bounds = True
         """Skip a scale's N x N tables when bounds show no seed site is active there;
         the tables are the same either way (tested)."""
@@ -327,6 +331,21 @@ class CoincidenceTrigger:
         stale &= lower * ratio > prev_e * margin
         return bool(np.all(not_sparse[may] | stale[may]))
 
+    def _slots(self, k: int, q: F64Array) -> SlotTables:
+        """Slot tables of scale ``k`` for occupancies ``q`` (N, N): they depend only on
+        which pairs have an occupancy above 0, which seldom changes from one rate
+        epoch to the next, so the last ones built for the scale are kept and reused
+        while that pattern holds (building them is an N x N pass)."""
+        pattern = np.packbits(q > 0.0).tobytes()
+        kept = self._slot_cache.get(k)
+        if kept is not None and kept[0] == pattern:
+            return kept[1]
+        slots = slot_tables(
+            self.geom.lo_flat_i, self.geom.hi_flat[k], self.n_sites, occupancy=q.reshape(-1)
+        )
+        self._slot_cache[k] = (pattern, slots)
+        return slots
+
     @property
     def max_ahead_ns(self) -> int:
         return max(self.geom.ahead_ns)
@@ -348,7 +367,7 @@ class CoincidenceTrigger:
         weight: F64Array = (
             np.zeros(n) if extra_seed_weight is None else extra_seed_weight.astype(np.float64)
         )
-        not_self = ~np.eye(n, dtype=bool)
+        not_self = self._not_self
         scales: list[ScaleTables] = []
         prev_e = np.full(n, np.nan)
         for k in range(self.geom.scales_ns.size):
@@ -376,9 +395,7 @@ class CoincidenceTrigger:
             tail_gt, point = _null_tables(q, active, e)
             slots = None  # nothing is evaluated at this scale
             if active.any():
-                slots = slot_tables(
-                    self.geom.lo_flat_i, self.geom.hi_flat[k], n, occupancy=q.reshape(-1)
-                )
+                slots = self._slots(k, q)
             scales.append(ScaleTables(active, tail_gt, point, slots))
             weight = weight + active.astype(np.float64)
         weight = np.where(lam > 0, weight, 0.0)
