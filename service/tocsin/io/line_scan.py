@@ -318,7 +318,8 @@ def warm_up() -> None:
     """Load (or compile) the kernel now, on a tiny input (see
     :func:`tocsin.engine.slot_counts.warm_up`)."""
     one = np.zeros(1, dtype=np.int64)
-    scan_lines(np.zeros(2, dtype=np.uint8), one, one + 1, *name_table(("a",)))
+    # read-only bytes, as scan_chunk passes them (numba compiles per signature)
+    scan_lines(np.frombuffer(b"{}", dtype=np.uint8), one, one + 1, *name_table(("a",)))
 
 
 class ScannedChunk(NamedTuple):
