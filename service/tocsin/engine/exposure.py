@@ -10,7 +10,17 @@ from __future__ import annotations
 import numpy as np
 
 from tocsin.engine.block import Block
+from tocsin.engine.jit import kernel
 from tocsin.types import I64Array
+
+
+@kernel
+def _scatter_add(table: I64Array, rows: I64Array, cols: I64Array, values: I64Array) -> None:
+    """``table[rows[k], cols[k]] += values[k]`` for every k (repeats add up), as
+    ``np.add.at`` does; integers, so the order of the sums changes nothing. One
+    compiled pass: ``np.add.at`` took ~5 ms for a 16 s block of 1000 sites."""
+    for k in range(rows.size):
+        table[rows[k], cols[k]] += values[k]
 
 
 class BinStore:
@@ -76,7 +86,8 @@ class BinStore:
         if block.t.size:
             keep = block.t >= oldest_ns
             col = (block.t[keep] // self.bin_ns) % self.capacity
-            np.add.at(self._counts, (block.site[keep].astype(np.intp), col.astype(np.intp)), 1)
+            ones = np.ones(col.size, dtype=np.int64)
+            _scatter_add(self._counts, block.site[keep].astype(np.int64), col, ones)
         if block.live_site.size:
             start = np.maximum(block.live_start, oldest_ns)
             self._add_live(block.live_site, start, block.live_end)
@@ -99,11 +110,7 @@ class BinStore:
         b = first[rep] + offs
         lo = np.maximum(start[rep], b * bn)
         hi = np.minimum(end[rep], (b + 1) * bn)
-        np.add.at(
-            self._live,
-            (site[rep].astype(np.intp), (b % self.capacity).astype(np.intp)),
-            hi - lo,
-        )
+        _scatter_add(self._live, site[rep].astype(np.int64), b % self.capacity, hi - lo)
 
     def _stretches(self, b0: int, b1: int) -> list[slice]:
         """The ring columns of bins ``[b0, b1)``: one stretch, or two when the range
