@@ -32,7 +32,7 @@ What it does:
   replay path as ``tocsin replay`` runs it (``Pipeline.feed``: lines read in chunks by
   the compiled line reader and offered in runs, after ``gc.freeze()``) over the same
   data encoded as one JSON batch per site per second, (2a) the reading of those
-  lines alone (``scan_chunk``) and (2b), for comparison, a general JSON parser
+  lines alone (``scan_block``) and (2b), for comparison, a general JSON parser
   over them (``orjson.loads``, nothing checked or kept); (3) the floor, ``np.sort``
   of the same int64 hit times in arrival order; (4) a plain per-hit Python count of
   distinct sites in their forward slots at the smallest scale on a slice, against the engine's
@@ -67,10 +67,11 @@ from tocsin.engine.block import Block
 from tocsin.engine.coincidence import CoincidenceTrigger, previous_same_site
 from tocsin.engine.core import RATE_UPDATE_S, Engine, default_threads
 from tocsin.engine.slot_counts import slot_counts
-from tocsin.io.line_scan import scan_chunk
+from tocsin.io.line_scan import scan_block
+from tocsin.io.recording import join_lines
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import Site, SiteRegistry
-from tocsin.pipeline import FEED_CHUNK_LINES, REPLAY_BLOCK_S, Pipeline
+from tocsin.pipeline import REPLAY_BLOCK_S, Pipeline
 from tocsin.types import C_M_PER_NS, NS_PER_S, I32Array, I64Array
 
 T0_S = 1_450_000_080
@@ -279,13 +280,12 @@ def run_engine(engine: Engine, blocks: list[Block]) -> int:
 
 def run_replay(pipe: Pipeline, lines: list[bytes]) -> float:
     """``tocsin replay``'s loop without the file: freeze what exists out of the garbage
-    collector's passes (again: the lines are new) and feed the numbered lines
-    (``Pipeline.feed``), then flush.
-    Returns the time (s) the end-of-input flush took: the engine then closes every
-    window that reaches the end of the data, up to the longest excess window plus
-    the longest scale later (a fixed cost per replay, whatever its length)."""
+    collector's passes (again: the lines are new) and feed the lines in blocks, as
+    read from a file (``Pipeline.feed``), then flush. Returns the time (s) the
+    end-of-input flush took: the engine then judges the data still pending and
+    closes every window that reaches the end of the data."""
     gc.freeze()
-    for _ in pipe.feed(enumerate(lines, start=1)):
+    for _ in pipe.feed(join_lines(lines)):
         pass
     t0 = time.perf_counter()
     pipe.finish()
@@ -293,10 +293,9 @@ def run_replay(pipe: Pipeline, lines: list[bytes]) -> float:
 
 
 def decode_all(lines: list[bytes], registry: SiteRegistry) -> None:
-    """Read every line as replay does (``scan_chunk``, chunk by chunk); drop the result."""
-    for i in range(0, len(lines), FEED_CHUNK_LINES):
-        part = lines[i : i + FEED_CHUNK_LINES]
-        scan_chunk(part, registry, range(i + 1, i + 1 + len(part)))
+    """Read every line as replay does (``scan_block``, block by block); drop the result."""
+    for data, first in join_lines(lines):
+        scan_block(data, registry, first)
 
 
 def parse_only(lines: list[bytes]) -> None:
@@ -493,14 +492,14 @@ def main(argv: list[str] | None = None) -> int:
             f"replay: {len(lines):,} JSON lines ({sum(map(len, lines)) / 1e6:.1f} MB), "
             f"{c.accepted:,} accepted, {c.hits_accepted:,} hits, rejected {dict(c.rejected)}, "
             f"{replay_engine.counters.seeds_evaluated - seeds_before:,} seed evaluations; "
-            f"scan_chunk alone {t_dec:.2f} s ({100 * t_dec / t_r:.0f} % of the replay time; "
+            f"scan_block alone {t_dec:.2f} s ({100 * t_dec / t_r:.0f} % of the replay time; "
             f"JSON decoding and validation "
             f"{'dominate' if 2 * t_dec > t_r else 'do not dominate'}); "
-            f"the end-of-input flush {t_fin:.2f} s of it ({100 * t_fin / t_r:.0f} %; a fixed "
-            f"cost per replay: {(t_r - t_fin) / a.seconds:.3f} s per second of data before it)"
+            f"the end-of-input flush {t_fin:.2f} s of it ({100 * t_fin / t_r:.0f} %: the data "
+            f"still pending and the windows that reach the end of the data)"
         )
         rows.append(Row("2. replay: Pipeline.feed (read + offer)", c.hits_accepted, t_r))
-        rows.append(Row("2a. part of 2: scan_chunk (read + check)", c.hits_accepted, t_dec))
+        rows.append(Row("2a. part of 2: scan_block (read + check)", c.hits_accepted, t_dec))
         # For comparison, a general JSON parser over the same lines (the recording is
         # JSON lines, CONTRACT.md 4): the parse alone, nothing checked, nothing built,
         # nothing kept (a list of every parsed line would add the garbage collector's

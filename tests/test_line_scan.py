@@ -17,7 +17,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from tocsin.io.line_scan import COL_OK, decode_lines, name_table, scan_lines
+from tocsin.io.line_scan import COL_OK, decode_lines, name_table, scan_lines, split_lines
 from tocsin.io.recording import Rejected, decode_line
 from tocsin.model.batch import MAX_LIVE_NS, HitBatch
 from tocsin.model.registry import Site, SiteRegistry
@@ -211,3 +211,15 @@ def test_hit_times_are_read_only_views_of_one_array() -> None:
     assert isinstance(first, HitBatch)
     with pytest.raises(ValueError):
         first.t[0] = 0
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(st.sampled_from([b"\n", b"\r", b" ", b"\t", b"\x0b", b"\x0c", b"x", b"{}"])))
+def test_lines_of_a_block_are_split_and_stripped_as_python_does(parts: list[bytes]) -> None:
+    """``split_lines`` gives each line of a block as ``bytes.split(b"\\n")`` and
+    ``bytes.strip()`` give it, blank lines left out, each with its index."""
+    data = b"".join(parts)
+    starts, ends, index = split_lines(np.frombuffer(data, dtype=np.uint8))
+    got = [(int(k), data[a:b]) for k, a, b in zip(index, starts, ends, strict=True)]
+    want = [(k, x.strip()) for k, x in enumerate(data.split(b"\n")) if x.strip()]
+    assert got == want

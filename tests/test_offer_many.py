@@ -5,6 +5,7 @@ batches and rejected lines."""
 
 from __future__ import annotations
 
+import io
 import random
 from typing import Any
 
@@ -14,7 +15,7 @@ import pytest
 
 import tocsin.ordering
 from tocsin.engine.block import Block
-from tocsin.io.recording import Rejected, decode_line
+from tocsin.io.recording import Rejected, decode_line, join_lines, read_blocks
 from tocsin.model.batch import HitBatch
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import Site, SiteRegistry
@@ -154,27 +155,50 @@ def test_remembered_seqs_are_trimmed_as_one_by_one(monkeypatch: pytest.MonkeyPat
 
 
 def test_feed_equals_decoding_and_offering_line_by_line() -> None:
+    """A recording read in blocks (``read_blocks``, here a few hundred bytes each so
+    lines straddle block ends) and fed gives what decoding and offering each
+    stripped, non-empty line gives: the same candidates, rejections with the same
+    line numbers, the same counters. With blank lines, CRLF endings, spaces around
+    lines and no newline at the end."""
     items = stream(5, 150)
     lines = [
         orjson.dumps(x.to_json_obj()) if isinstance(x, HitBatch) else b'{"v":1,"site":"nowhere"}'
         for x in items
     ]
-    lines.insert(17, b"{broken")
-    numbered = list(enumerate(lines, start=3))
+    lines[17] = b"{broken"
+    lines[40] = b"  " + lines[40] + b" \r"
+    lines[41] = lines[41] + b"\r"
+    lines.insert(60, b"")
+    lines.insert(61, b" \t ")
+    text = b"\n".join(lines)  # no newline after the last line
     a = Pipeline(REG, EngineConfig(), candidate_far_per_year=1e9, release_every_s=REPLAY_BLOCK_S)
     b = Pipeline(REG, EngineConfig(), candidate_far_per_year=1e9, release_every_s=REPLAY_BLOCK_S)
     want, want_bad = [], []
-    for k, x in numbered:
-        item = decode_line(x, REG, line_no=k)
+    for k, raw in enumerate(io.BytesIO(text), start=1):
+        if not raw.strip():
+            continue
+        item = decode_line(raw.strip(), REG, line_no=k)
         if isinstance(item, Rejected):
             want_bad.append(item)
         want += a.offer(item)
     want += a.finish()
     got, got_bad = [], []
-    for fed in b.feed(iter(numbered)):
+    for fed in b.feed(read_blocks(io.BytesIO(text), size=300)):
         got_bad += fed.rejected
         got += fed.candidates
     got += b.finish()
     assert [c.to_json_line() for c in got] == [c.to_json_line() for c in want]
     assert got_bad == want_bad and len(want_bad) >= 2
     assert b.counters == a.counters
+
+
+@pytest.mark.parametrize("size", [1, 5, 64, 10_000])
+def test_blocks_hold_every_line_once_with_its_number(size: int) -> None:
+    text = b"a\n\nbb\r\n ccc \n\n\ndddd"
+    got = []
+    for data, first in read_blocks(io.BytesIO(text), size=size):
+        got += list(enumerate(data.split(b"\n"), start=first))
+    assert got == list(enumerate(text.split(b"\n"), start=1))
+    assert list(read_blocks(io.BytesIO(b""))) == []
+    joined = list(join_lines([b"x", b"y", b"z"], per_block=2))
+    assert joined == [(b"x\ny", 1), (b"z", 3)]

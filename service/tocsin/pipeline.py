@@ -8,7 +8,6 @@ same arrivals give the same blocks and the same candidates.
 
 from __future__ import annotations
 
-import itertools
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass, field
@@ -18,7 +17,7 @@ import numpy as np
 
 from tocsin.engine.block import Block
 from tocsin.engine.core import Engine
-from tocsin.io.line_scan import scan_chunk
+from tocsin.io.line_scan import scan_block
 from tocsin.io.line_scan import warm_up as warm_line_scan
 from tocsin.io.recording import Rejected
 from tocsin.model.batch import BatchColumns, HitBatch
@@ -33,20 +32,13 @@ REPLAY_BLOCK_S = 16.0
 for speed; the candidates do not depend on it."""
 
 
-FEED_CHUNK_LINES = 16384
-"""Recording lines read and offered together by :meth:`Pipeline.feed` (~5 MB of
-text; the hit times of a chunk are one array)."""
-
-
 class Fed(NamedTuple):
-    """What one chunk of :meth:`Pipeline.feed` gave."""
+    """What one block of :meth:`Pipeline.feed` gave."""
 
     rejected: list[Rejected]
-    """The chunk's lines that could not be used, in order."""
+    """The block's lines that could not be used, in order."""
     candidates: list[Candidate]
     """New candidates, in the order the engine gave them."""
-    last_line_no: int
-    """Number of the chunk's last line."""
 
 
 @dataclass(slots=True)
@@ -158,20 +150,16 @@ class Pipeline:
                 lo += 1
         return out
 
-    def feed(self, lines: Iterable[tuple[int, bytes]]) -> Iterator[Fed]:
-        """Replay's intake: numbered recording lines (stripped, not empty) in, read
-        :data:`FEED_CHUNK_LINES` at a time by one compiled pass
-        (:func:`~tocsin.io.line_scan.scan_chunk`) and offered in line order, the plain
-        batches through :meth:`offer_columns`; one :class:`Fed` per chunk. The same
-        candidates, in the same order, as ``offer(decode_line(line))`` line by line.
-        Call :meth:`finish` at the end of input."""
-        it = iter(lines)
-        while True:
-            part = list(itertools.islice(it, FEED_CHUNK_LINES))
-            if not part:
-                return
-            nos, chunk = zip(*part, strict=True)
-            scan = scan_chunk(chunk, self.registry, nos)
+    def feed(self, blocks: Iterable[tuple[bytes, int]]) -> Iterator[Fed]:
+        """Replay's intake: blocks of recording lines in (``(data, first line
+        number)``, whole lines separated by newlines: :func:`~tocsin.io.recording.
+        read_blocks`), each read by one compiled pass
+        (:func:`~tocsin.io.line_scan.scan_block`) and offered in line order, the plain
+        batches through :meth:`offer_columns`; one :class:`Fed` per block. The same
+        candidates, in the same order, as ``offer(decode_line(line))`` for every
+        stripped, non-empty line. Call :meth:`finish` at the end of input."""
+        for data, first_line_no in blocks:
+            scan = scan_block(data, self.registry, first_line_no)
             out: list[Candidate] = []
             bad: list[Rejected] = []
             row = 0
@@ -183,7 +171,7 @@ class Pipeline:
                     bad.append(item)
                 out += self.offer(item)
             out += self.offer_columns(scan.cols, row, len(scan.cols))
-            yield Fed(bad, out, nos[-1])
+            yield Fed(bad, out)
 
     def tick(self, now_ns: int) -> list[Candidate]:
         """Advance the watermark on an idle timer (live service).

@@ -23,7 +23,7 @@ from tocsin.engine.core import default_threads
 from tocsin.io.journal import PREFIX as JOURNAL_PREFIX
 from tocsin.io.journal import SUFFIX as JOURNAL_SUFFIX
 from tocsin.io.journal import read_from, segments
-from tocsin.io.recording import Rejected, open_text
+from tocsin.io.recording import Rejected, join_lines, open_text, read_blocks
 from tocsin.model.alert_config import load_alert_config
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import load_engine_config
@@ -121,13 +121,14 @@ def run(args: argparse.Namespace) -> int:
         open(out / "rejected.jsonl", "wb") as rej_fh,
         contextlib.ExitStack() as stack,
     ):
-        raw_lines: Iterable[bytes]
+        blocks: Iterable[tuple[bytes, int]]
         position: Callable[[], int]
         if journal:
-            raw_lines, position = _journal_lines(source)
+            lines, position = _journal_lines(source)
+            blocks = join_lines(lines)
         else:
             fh = stack.enter_context(open_text(source, "rb"))
-            raw_lines, position = fh, lambda: raw_position(fh)
+            blocks, position = read_blocks(fh), lambda: raw_position(fh)
 
         def emit(cands: list[Candidate]) -> None:
             for c in cands:
@@ -136,17 +137,11 @@ def run(args: argparse.Namespace) -> int:
                 if desk.consider(c) is not None:
                     flush_directory(archive, out / "alerts")
 
-        def numbered() -> Iterator[tuple[int, bytes]]:
-            for k, raw in enumerate(raw_lines, start=1):
-                line = raw.strip()
-                if line:
-                    yield k, line
-
         # What exists now (imported modules, the registry, the engine's tables) lives
         # to the end: kept out of the garbage collector's full passes, which would
         # otherwise visit it again and again while batches pile up between releases.
         gc.freeze()
-        for fed in pipe.feed(numbered()):
+        for fed in pipe.feed(blocks):
             for item in fed.rejected:
                 rej_fh.write(orjson.dumps(_rej_obj(item)) + b"\n")
                 if shown < MAX_REJECT_LINES_SHOWN and not args.quiet:

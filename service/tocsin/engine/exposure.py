@@ -23,6 +23,18 @@ def _scatter_add(table: I64Array, rows: I64Array, cols: I64Array, values: I64Arr
         table[rows[k], cols[k]] += values[k]
 
 
+@kernel
+def _count_hits(
+    counts: I64Array, t: I64Array, site: np.ndarray, bin_ns: int, oldest_ns: int
+) -> None:
+    """One count per hit at or after ``oldest_ns`` in ``counts[site, bin % capacity]``
+    (bins of ``bin_ns`` from GPS 0; ``capacity`` = the number of columns)."""
+    cap = counts.shape[1]
+    for k in range(t.size):
+        if t[k] >= oldest_ns:
+            counts[site[k], (t[k] // bin_ns) % cap] += 1
+
+
 class BinStore:
     """Ring of ``capacity`` bins x ``n_sites`` of counts and live nanoseconds.
 
@@ -84,10 +96,7 @@ class BinStore:
         # anything older is dropped, never wrapped into a wrong bin.
         oldest_ns = self.first_bin * self.bin_ns
         if block.t.size:
-            keep = block.t >= oldest_ns
-            col = (block.t[keep] // self.bin_ns) % self.capacity
-            ones = np.ones(col.size, dtype=np.int64)
-            _scatter_add(self._counts, block.site[keep].astype(np.int64), col, ones)
+            _count_hits(self._counts, block.t, block.site, self.bin_ns, oldest_ns)
         if block.live_site.size:
             start = np.maximum(block.live_start, oldest_ns)
             self._add_live(block.live_site, start, block.live_end)

@@ -31,7 +31,7 @@ two to that on generated and mutated lines.
 from __future__ import annotations
 
 import functools
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import NamedTuple
 
 import numpy as np
@@ -318,34 +318,70 @@ def warm_up() -> None:
     """Load (or compile) the kernel now, on a tiny input (see
     :func:`tocsin.engine.slot_counts.warm_up`)."""
     one = np.zeros(1, dtype=np.int64)
-    # read-only bytes, as scan_chunk passes them (numba compiles per signature)
-    scan_lines(np.frombuffer(b"{}", dtype=np.uint8), one, one + 1, *name_table(("a",)))
+    # read-only bytes, as scan_block passes them (numba compiles per signature)
+    buf = np.frombuffer(b"{}", dtype=np.uint8)
+    scan_lines(buf, one, one + 1, *name_table(("a",)))
+    split_lines(buf)
+
+
+@kernel
+def split_lines(buf: np.ndarray) -> tuple[I64Array, I64Array, I64Array]:
+    """The lines of ``buf`` (uint8; split at each newline, as a binary file is read),
+    each stripped of ASCII whitespace as ``bytes.strip`` does; for the lines left
+    non-empty: start, end and the line's index in ``buf`` (0-based, every line
+    counted, blank ones too)."""
+    n = buf.size
+    n_lines = 1
+    for i in range(n):
+        if buf[i] == 10:
+            n_lines += 1
+    starts = np.empty(n_lines, dtype=np.int64)
+    ends = np.empty(n_lines, dtype=np.int64)
+    index = np.empty(n_lines, dtype=np.int64)
+    kept = 0
+    line = 0
+    a = 0
+    while a <= n:
+        b = a
+        while b < n and buf[b] != 10:
+            b += 1
+        lo, hi = a, b
+        while lo < hi and (buf[lo] == 32 or 9 <= buf[lo] <= 13):
+            lo += 1
+        while hi > lo and (buf[hi - 1] == 32 or 9 <= buf[hi - 1] <= 13):
+            hi -= 1
+        if hi > lo:
+            starts[kept] = lo
+            ends[kept] = hi
+            index[kept] = line
+            kept += 1
+        line += 1
+        a = b + 1
+    return starts[:kept], ends[:kept], index[:kept]
 
 
 class ScannedChunk(NamedTuple):
-    """A chunk of lines after :func:`scan_chunk`."""
+    """A chunk of lines after :func:`scan_chunk` or :func:`scan_block`."""
 
     cols: BatchColumns
     """The batches of the lines the compiled pass took, in line order."""
     row_pos: I64Array
-    """Position in the chunk of each line in ``cols``."""
+    """Position of each line in ``cols`` among the chunk's (non-empty) lines."""
     others: list[tuple[int, HitBatch | Rejected]]
     """(position, :func:`decode_line`'s answer) for every other line, in order."""
 
 
-def scan_chunk(
-    lines: Sequence[bytes], registry: SiteRegistry, line_nos: Sequence[int]
+def _scan(
+    data: bytes,
+    starts: I64Array,
+    ends: I64Array,
+    registry: SiteRegistry,
+    line_no: Callable[[int], int],
 ) -> ScannedChunk:
-    """Read ``lines`` (numbered ``line_nos``): the plain ones by one compiled pass into
-    columns, the others by :func:`decode_line` (module doc). No Python object is made
-    per plain line."""
-    n = len(lines)
-    sizes = np.fromiter(map(len, lines), dtype=np.int64, count=n)
-    ends = np.cumsum(sizes + 1) - 1  # lines joined by one byte each
-    starts = ends - sizes
-    joined = b"\n".join(lines)
+    """Lines ``data[starts[k]:ends[k]]``: the plain ones read by the compiled pass into
+    columns, the others by :func:`decode_line` (numbered ``line_no(k)``)."""
     rows, t_all = scan_lines(
-        np.frombuffer(joined, dtype=np.uint8), starts, ends, *name_table(registry.ids)
+        np.frombuffer(data, dtype=np.uint8), starts, ends, *name_table(registry.ids)
     )
     t_all.flags.writeable = False
     row_pos = np.flatnonzero(rows[:, COL_OK])
@@ -360,13 +396,35 @@ def scan_chunk(
         r[:, COL_T_B],
         t_all,
     )
-    taken = np.zeros(n, dtype=bool)
+    taken = np.zeros(starts.size, dtype=bool)
     taken[row_pos] = True
     others: list[tuple[int, HitBatch | Rejected]] = [
-        (k, decode_line(lines[k], registry, line_no=line_nos[k]))
-        for k in np.flatnonzero(~taken).tolist()
+        (k, decode_line(data[a:b], registry, line_no=line_no(k)))
+        for k, a, b in zip(
+            *(x.tolist() for x in (np.flatnonzero(~taken), starts[~taken], ends[~taken])),
+            strict=True,
+        )
     ]
     return ScannedChunk(cols, row_pos, others)
+
+
+def scan_block(data: bytes, registry: SiteRegistry, first_line_no: int) -> ScannedChunk:
+    """Read the lines of ``data`` (whole lines separated by newlines, the first one
+    numbered ``first_line_no``), blank ones left out, as :func:`decode_line` reads
+    each line stripped: a recording read a few megabytes at a time, without a Python
+    object per line (module doc)."""
+    starts, ends, index = split_lines(np.frombuffer(data, dtype=np.uint8))
+    return _scan(data, starts, ends, registry, lambda k: first_line_no + int(index[k]))
+
+
+def scan_chunk(
+    lines: Sequence[bytes], registry: SiteRegistry, line_nos: Sequence[int]
+) -> ScannedChunk:
+    """Read ``lines`` (numbered ``line_nos``; each already stripped, none empty) as
+    :func:`scan_block` does."""
+    sizes = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines))
+    ends = np.cumsum(sizes + 1) - 1  # lines joined by one byte each
+    return _scan(b"\n".join(lines), ends - sizes, ends, registry, line_nos.__getitem__)
 
 
 def decode_lines(

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import gzip
 import io
+import itertools
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -45,6 +46,48 @@ def read_recording(path: str | Path, registry: SiteRegistry) -> Iterator[HitBatc
             if not line:
                 continue
             yield decode_line(line, registry, line_no=k)
+
+
+BLOCK_BYTES = 4 << 20
+"""Bytes of a recording read at a time by :func:`read_blocks`."""
+BLOCK_LINES = 16384
+"""Lines joined into one block by :func:`join_lines` (~5 MB of an agent's 1 s batches)."""
+
+
+def read_blocks(fh: IO[bytes], size: int = BLOCK_BYTES) -> Iterator[tuple[bytes, int]]:
+    """A binary file as blocks of whole lines: ``(data, number of its first line)``,
+    ``data`` without its last newline, about ``size`` bytes each (a line longer than
+    that makes its block longer). Lines are counted from 1, blank ones too, as
+    ``enumerate(fh, start=1)`` counts them."""
+    carry = b""
+    line_no = 1
+    while True:
+        data = fh.read(size)
+        if not data:
+            if carry:
+                yield carry, line_no
+            return
+        data = carry + data
+        cut = data.rfind(b"\n")
+        if cut < 0:
+            carry = data
+            continue
+        block, carry = data[:cut], data[cut + 1 :]
+        yield block, line_no
+        line_no += block.count(b"\n") + 1
+
+
+def join_lines(lines: Iterable[bytes], per_block: int = BLOCK_LINES) -> Iterator[tuple[bytes, int]]:
+    """Lines (without newlines) as blocks of :func:`read_blocks`'s form, ``per_block``
+    lines each, numbered from 1."""
+    it = iter(lines)
+    line_no = 1
+    while True:
+        part = list(itertools.islice(it, per_block))
+        if not part:
+            return
+        yield b"\n".join(part), line_no
+        line_no += len(part)
 
 
 def decode_line(line: bytes, registry: SiteRegistry, *, line_no: int = 0) -> HitBatch | Rejected:
