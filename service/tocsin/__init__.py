@@ -17,4 +17,4 @@ __all__ = [
     "TocsinError",
     "parse_batch",
 ]
-__version__ = "0.6.0"
+__version__ = "0.7.0"
