@@ -91,14 +91,10 @@ def test_echo_keeps_the_origin_and_adds_a_response() -> None:
     received = parse_transport(framing.iamalive(BROKER, NOW))
     reply = parse_transport(framing.echo(received, NOW, response="ivo://tocsin.example/sub"))
     assert (reply.role, reply.origin, reply.response) == (
-        "iamalive",
-        BROKER,
-        "ivo://tocsin.example/sub",
+        "iamalive", BROKER, "ivo://tocsin.example/sub"
     )
     assert [c.tag for c in _tree(framing.echo(received, NOW, response="ivo://a.b/c"))] == [
-        "Origin",
-        "Response",
-        "TimeStamp",
+        "Origin", "Response", "TimeStamp"
     ]
     with pytest.raises(ValueError, match="'ack'"):
         framing.echo(parse_transport(framing.ack(IVORN, NOW)), NOW)
@@ -164,16 +160,10 @@ GOOD = "<Origin>ivo://tocsin.example/test#1</Origin><TimeStamp>2026-01-01T00:00:
         (_transport(GOOD, role="hello"), "schema_invalid", "'hello'"),
         (_transport("<TimeStamp>2026-01-01T00:00:00</TimeStamp>"), "schema_invalid", "Origin"),
         (_transport("<Origin>ivo://a.b/c</Origin>"), "schema_invalid", "TimeStamp"),
-        (
-            _transport(GOOD.replace("2026-01-01T00:00:00Z", "yesterday")),
-            "schema_invalid",
-            "'yesterday'",
-        ),
-        (
-            _transport(GOOD.replace("2026-01-01T00:00:00Z", "2026-01-01")),
-            "schema_invalid",
-            "'2026-01-01'",
-        ),
+        (_transport(GOOD.replace("2026-01-01T00:00:00Z", "yesterday")), "schema_invalid",
+         "'yesterday'"),
+        (_transport(GOOD.replace("2026-01-01T00:00:00Z", "2026-01-01")), "schema_invalid",
+         "'2026-01-01'"),
         (_transport(GOOD + "<Extra/>"), "schema_invalid", "'Extra'"),
         (_transport(GOOD + "<Origin>ivo://x.y/z</Origin>"), "schema_invalid", "second 'Origin'"),
         (_transport(GOOD + "<Meta><Group/></Meta>"), "schema_invalid", "'Group'"),

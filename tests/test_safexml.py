@@ -41,9 +41,8 @@ TAIL = b"</voe:VOEvent>"
 def make_voevent(stream_id: str = "1", *, role: str = "test", note: str = "test packet") -> object:
     """A small valid VOEvent 2.0 (voevent-parse object) from a fictional author."""
     v = vp.Voevent(stream=STREAM, stream_id=stream_id, role=role)
-    vp.set_who(
-        v, date=dt.datetime(2026, 1, 2, 3, 4, 5, tzinfo=dt.UTC), author_ivorn="tocsin.example/team"
-    )
+    vp.set_who(v, date=dt.datetime(2026, 1, 2, 3, 4, 5, tzinfo=dt.UTC),
+               author_ivorn="tocsin.example/team")
     vp.set_author(v, title="Tocsin test author")
     v.What.append(vp.Param("snr", 5.5, ucd="stat.snr"))
     vp.add_how(v, descriptions=note)
@@ -108,15 +107,9 @@ def test_predefined_entities_and_character_references_still_work() -> None:
 
 def test_billion_laughs_is_refused_as_doctype_without_expansion() -> None:
     lines = [b'<!ENTITY l0 "lol">']
-    lines += [b'<!ENTITY l%d "%s">' % (i, b"&l%d;" % (i - 1) * 10) for i in range(1, 10)]
-    data = (
-        b"<?xml version='1.0'?>\n<!DOCTYPE voe:VOEvent ["
-        + b"\n".join(lines)
-        + b"]>\n"
-        + HEAD.split(b"\n", 1)[1]
-        + b"<Description>&l9;</Description>"
-        + TAIL
-    )
+    lines += [b"<!ENTITY l%d \"%s\">" % (i, b"&l%d;" % (i - 1) * 10) for i in range(1, 10)]
+    data = (b"<?xml version='1.0'?>\n<!DOCTYPE voe:VOEvent [" + b"\n".join(lines) + b"]>\n"
+            + HEAD.split(b"\n", 1)[1] + b"<Description>&l9;</Description>" + TAIL)
     assert len(data) < 2000  # 10**9 "lol"s (3 GB) if expanded
     err = rejected(data)
     assert err.reason == "doctype"  # [VTP2 §3.3] no DOCTYPE in a VTP message
@@ -124,16 +117,9 @@ def test_billion_laughs_is_refused_as_doctype_without_expansion() -> None:
 
 
 def test_quadratic_blowup_is_refused_as_doctype() -> None:
-    data = (
-        b"<?xml version='1.0'?><!DOCTYPE r [<!ENTITY a \""
-        + b"x" * 50_000
-        + b'">]>'
-        + HEAD.split(b"\n", 1)[1]
-        + b"<Description>"
-        + b"&a;" * 20_000
-        + b"</Description>"
-        + TAIL
-    )
+    data = (b"<?xml version='1.0'?><!DOCTYPE r [<!ENTITY a \"" + b"x" * 50_000 + b"\">]>"
+            + HEAD.split(b"\n", 1)[1] + b"<Description>" + b"&a;" * 20_000 + b"</Description>"
+            + TAIL)
     assert rejected(data).reason == "doctype"
     assert peak_bytes(lambda: check_voevent(data)) < 1_000_000  # 1 GB if expanded
 
@@ -141,12 +127,8 @@ def test_quadratic_blowup_is_refused_as_doctype() -> None:
 def test_external_file_entity_is_refused_and_not_read(tmp_path: Path) -> None:
     secret = tmp_path / "secret.txt"
     secret.write_text("tocsin-secret-4711")
-    data = (
-        f"<?xml version='1.0'?><!DOCTYPE r [<!ENTITY x SYSTEM \"file://{secret}\">]>".encode()
-        + HEAD.split(b"\n", 1)[1]
-        + b"<Description>&x;</Description>"
-        + TAIL
-    )
+    data = (f"<?xml version='1.0'?><!DOCTYPE r [<!ENTITY x SYSTEM \"file://{secret}\">]>"
+            .encode() + HEAD.split(b"\n", 1)[1] + b"<Description>&x;</Description>" + TAIL)
     err = rejected(data)
     assert err.reason == "doctype"
     assert "tocsin-secret-4711" not in str(err)
@@ -155,12 +137,8 @@ def test_external_file_entity_is_refused_and_not_read(tmp_path: Path) -> None:
 def test_parameter_entity_is_refused(tmp_path: Path) -> None:
     dtd = tmp_path / "evil.dtd"
     dtd.write_text('<!ENTITY x "expanded">')
-    data = (
-        f'<!DOCTYPE r [<!ENTITY % p SYSTEM "file://{dtd}"> %p;]>'.encode()
-        + HEAD.split(b"\n", 1)[1]
-        + b"<Description>&x;</Description>"
-        + TAIL
-    )
+    data = (f"<!DOCTYPE r [<!ENTITY % p SYSTEM \"file://{dtd}\"> %p;]>".encode()
+            + HEAD.split(b"\n", 1)[1] + b"<Description>&x;</Description>" + TAIL)
     assert rejected(data).reason == "doctype"
 
 
@@ -179,12 +157,8 @@ def listener() -> Iterator[socket.socket]:
 
 def test_external_http_entity_is_refused_without_a_connection(listener: socket.socket) -> None:
     port = listener.getsockname()[1]
-    data = (
-        f"<?xml version='1.0'?><!DOCTYPE r [<!ENTITY x SYSTEM \"http://127.0.0.1:{port}/x\">]>".encode()
-        + HEAD.split(b"\n", 1)[1]
-        + b"<Description>&x;</Description>"
-        + TAIL
-    )
+    data = (f"<?xml version='1.0'?><!DOCTYPE r [<!ENTITY x SYSTEM \"http://127.0.0.1:{port}/x\">]>"
+            .encode() + HEAD.split(b"\n", 1)[1] + b"<Description>&x;</Description>" + TAIL)
     assert rejected(data).reason == "doctype"
     with pytest.raises(BlockingIOError):  # no connection is waiting to be accepted
         listener.accept()
@@ -236,10 +210,8 @@ def test_nesting_up_to_the_cap_passes_the_scan() -> None:
     ("data", "shown"),
     [
         (b"<html><body/></html>", "html"),
-        (
-            framing.ack("ivo://tocsin.example/test#1", dt.datetime(2026, 1, 1, tzinfo=dt.UTC)),
-            "Transport",
-        ),
+        (framing.ack("ivo://tocsin.example/test#1", dt.datetime(2026, 1, 1, tzinfo=dt.UTC)),
+         "Transport"),
         # [VOE2 §3] the 2.0 namespace exactly; 1.1 packets and un-namespaced roots are not 2.0
         (HEAD.replace(b"VOEvent/v2.0", b"VOEvent/v1.1") + TAIL, "VOEvent/v1.1"),
         (b"<VOEvent ivorn='ivo://tocsin.example/test#1' version='2.0'/>", "VOEvent"),
@@ -345,11 +317,8 @@ def test_dedup_key_sees_any_change_inside_the_element_including_whitespace() -> 
 
 
 def test_dedup_key_of_a_self_closing_root_with_a_gt_in_an_attribute() -> None:
-    element = (
-        b"<voe:VOEvent xmlns:voe='"
-        + VOEVENT_NS.encode()
-        + b"' ivorn='ivo://tocsin.example/s#a>b' version='2.0'/>"
-    )
+    element = (b"<voe:VOEvent xmlns:voe='" + VOEVENT_NS.encode()
+               + b"' ivorn='ivo://tocsin.example/s#a>b' version='2.0'/>")
     data = b"<?xml version='1.0'?>" + element + b"<!-- after -->\n"
     assert dedup_key(data) == hashlib.sha1(element).hexdigest()
 

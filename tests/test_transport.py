@@ -33,9 +33,8 @@ def allow(**networks: str) -> list[AllowedNetwork]:
 
 def packets(n: int, prefix: str) -> list[tuple[bytes, str]]:
     """``n`` small valid VOEvents (role test) and their IVORNs."""
-    return [
-        (make_packet(f"{prefix}-{i}"), f"ivo://tocsin.example/test#{prefix}-{i}") for i in range(n)
-    ]
+    return [(make_packet(f"{prefix}-{i}"), f"ivo://tocsin.example/test#{prefix}-{i}")
+            for i in range(n)]
 
 
 async def eventually(cond: Callable[[], bool], timeout: float = 20.0) -> None:
@@ -141,9 +140,7 @@ async def test_subscriber_gets_byte_identical_framed_packets_and_outcomes_are_re
             peer.send(framing.ack(ivorn, NOW) if i < 2 else framing.nak(ivorn, NOW, "test"))
         await eventually(lambda: len(outcomes.seen) == 3)
     assert outcomes.seen == [
-        ("alpha", sent[0][1], "ack"),
-        ("alpha", sent[1][1], "ack"),
-        ("alpha", sent[2][1], "nak"),
+        ("alpha", sent[0][1], "ack"), ("alpha", sent[1][1], "ack"), ("alpha", sent[2][1], "nak"),
     ]
     assert (srv.counters.sent, srv.counters.acked, srv.counters.naked) == (3, 2, 1)
 
@@ -176,11 +173,8 @@ async def test_address_not_on_the_allow_list_is_refused_and_logged(
 async def test_stalled_subscriber_does_not_hold_up_the_others() -> None:
     outcomes, received = Outcomes(), Received()
     sent = packets(20, "s")
-    srv = server(
-        allow=allow(fast="127.0.0.2/32", slow="127.0.0.3/32"),
-        reply_timeout_s=60.0,
-        on_result=outcomes,
-    )
+    srv = server(allow=allow(fast="127.0.0.2/32", slow="127.0.0.3/32"), reply_timeout_s=60.0,
+                 on_result=outcomes)
     async with (
         srv,
         # the slow peer connects and then never reads nor answers
@@ -208,12 +202,8 @@ async def test_queue_overflow_cuts_off_only_the_stalled_subscriber(
     caplog.set_level(logging.INFO, logger=LOG)
     outcomes, received = Outcomes(), Received()
     sent = packets(10, "o")
-    srv = server(
-        allow=allow(fast="127.0.0.2/32", slow="127.0.0.3/32"),
-        queue_size=4,
-        reply_timeout_s=60.0,
-        on_result=outcomes,
-    )
+    srv = server(allow=allow(fast="127.0.0.2/32", slow="127.0.0.3/32"), queue_size=4,
+                 reply_timeout_s=60.0, on_result=outcomes)
     async with (
         srv,
         await RawPeer.connect(srv.port, source="127.0.0.3") as slow,
@@ -238,11 +228,8 @@ async def test_subscriber_that_never_answers_times_out(caplog: pytest.LogCapture
     caplog.set_level(logging.INFO, logger=LOG)
     outcomes, received = Outcomes(), Received()
     sent = packets(3, "t")
-    srv = server(
-        allow=allow(fast="127.0.0.2/32", mute="127.0.0.3/32"),
-        reply_timeout_s=0.5,
-        on_result=outcomes,
-    )
+    srv = server(allow=allow(fast="127.0.0.2/32", mute="127.0.0.3/32"), reply_timeout_s=0.5,
+                 on_result=outcomes)
     async with (
         srv,
         await RawPeer.connect(srv.port, source="127.0.0.3") as mute,
@@ -256,9 +243,7 @@ async def test_subscriber_that_never_answers_times_out(caplog: pytest.LogCapture
         await eventually(lambda: len(outcomes.of("mute")) == 3)
         await eventually(lambda: len(outcomes.of("fast")) == 3)
     assert outcomes.of("mute") == [
-        (sent[0][1], "timeout"),
-        (sent[1][1], "disconnected"),
-        (sent[2][1], "disconnected"),
+        (sent[0][1], "timeout"), (sent[1][1], "disconnected"), (sent[2][1], "disconnected")
     ]
     assert outcomes.of("fast") == [(ivorn, "ack") for _, ivorn in sent]
     assert srv.counters.timed_out == 1
@@ -274,8 +259,7 @@ OFFENCES = {
     # [VTP2 §7.3] a subscriber sends only Transport messages
     "framed-voevent": (framing.encode_frame(make_packet("x")), "bad_message", "not_transport"),
     "unsolicited-ack": (
-        framing.encode_frame(framing.ack("ivo://tocsin.example/test#zz", NOW)),
-        "protocol",
+        framing.encode_frame(framing.ack("ivo://tocsin.example/test#zz", NOW)), "protocol",
         "unsolicited",
     ),
 }
@@ -451,14 +435,8 @@ async def test_client_reconnects_after_the_server_restarts() -> None:
 @pytest.mark.asyncio
 async def test_client_drops_a_silent_connection_and_reconnects() -> None:
     async with server(allow=allow(sub="127.0.0.1/32"), idle_s=90.0) as srv:
-        client = TransportClient(
-            "127.0.0.1",
-            srv.port,
-            Received(),
-            silence_timeout_s=0.3,
-            backoff_min_s=0.05,
-            backoff_max_s=0.1,
-        )
+        client = TransportClient("127.0.0.1", srv.port, Received(), silence_timeout_s=0.3,
+                                 backoff_min_s=0.05, backoff_max_s=0.1)
         async with client:
             await eventually(lambda: client.counters.connects >= 2)
             assert client.counters.disconnects["silent"] >= 1
@@ -478,9 +456,8 @@ async def test_client_drops_a_broker_announcing_a_huge_frame() -> None:
     rogue_server = await asyncio.start_server(rogue, "127.0.0.1", 0)
     port = rogue_server.sockets[0].getsockname()[1]
     try:
-        client = TransportClient(
-            "127.0.0.1", port, Received(), backoff_min_s=0.05, backoff_max_s=0.1
-        )
+        client = TransportClient("127.0.0.1", port, Received(), backoff_min_s=0.05,
+                                 backoff_max_s=0.1)
         async with client:
             await eventually(lambda: connections >= 2)
             assert client.counters.disconnects["frame_too_large"] >= 1
@@ -497,13 +474,8 @@ async def test_settings_are_checked() -> None:
     with pytest.raises(ValueError, match="empty"):
         server(allow=[])
     with pytest.raises(ValueError, match="unique"):
-        TransportServer(
-            origin=ORIGIN,
-            allow=[
-                AllowedNetwork.parse("a", "127.0.0.1/32"),
-                AllowedNetwork.parse("a", "127.0.0.2/32"),
-            ],
-        )
+        TransportServer(origin=ORIGIN, allow=[AllowedNetwork.parse("a", "127.0.0.1/32"),
+                                              AllowedNetwork.parse("a", "127.0.0.2/32")])
     with pytest.raises(ValueError, match=r"'127\.0\.0\.1/8'"):
         AllowedNetwork.parse("loose", "127.0.0.1/8")  # host bits set
     with pytest.raises(ValueError, match="backoff"):

@@ -51,83 +51,33 @@ def add_parser(sub: Any) -> None:
     a("--site", required=True, help="this site's id in the registry, e.g. hollow-creek-2")
     a("--broker", metavar="URL", help=f"mqtt://host:port or mqtts://host:port (or ${ENV_URL})")
     a("--username", help=f"broker user name (default ${ENV_USER}, else none)")
-    a(
-        "--password-env",
-        metavar="VAR",
-        help=f"name of the environment variable holding the password (default {ENV_PASSWORD})",
-    )
+    a("--password-env", metavar="VAR",
+      help=f"name of the environment variable holding the password (default {ENV_PASSWORD})")
     a("--client-id", help="fixed MQTT client id (default tocsin-agent-SITE)")
-    a(
-        "--topic-root",
-        default=DEFAULT_ROOT,
-        metavar="R",
-        help="topic root; batches go to R/site/SITE/hits (default %(default)s)",
-    )
-    a(
-        "--source",
-        default="pipe:-",
-        metavar="SPEC",
-        help="file:PATH (regular file: upload; FIFO or '-': real time), pipe:- (standard "
-        "input), or sim:RATE (simulated detector, RATE hits/s); default %(default)s",
-    )
-    a(
-        "--spool",
-        type=Path,
-        metavar="DIR",
-        help="spool directory, one per site (default ~/.local/state/tocsin/spool/SITE)",
-    )
-    a(
-        "--batch-s",
-        type=float,
-        default=1.0,
-        metavar="S",
-        help="GPS seconds per batch (default %(default)s)",
-    )
-    a(
-        "--max-batch-hits",
-        type=int,
-        default=50_000,
-        metavar="N",
-        help="close a batch early at N hits (default %(default)s)",
-    )
-    a(
-        "--spool-max-mb",
-        type=float,
-        default=256.0,
-        metavar="M",
-        help="spool bound in MB (10^6 bytes); when full, new batches are dropped and their time "
-        "is reported as dead time (default %(default)s)",
-    )
-    a(
-        "--grace-s",
-        type=float,
-        default=DEFAULT_GRACE_S,
-        metavar="S",
-        help="real-time input: how late a line may arrive after its hit time (default %(default)s)",
-    )
-    a(
-        "--stall-s",
-        type=float,
-        default=DEFAULT_STALL_S,
-        metavar="S",
-        help="real-time input: silence (no line at all; comment lines count) after which the "
-        "site stops counting as live; 0 = never (default %(default)s)",
-    )
-    a(
-        "--keepalive-s",
-        type=int,
-        default=30,
-        metavar="S",
-        help="MQTT keepalive; the broker announces the last will after 1.5 x S without "
-        "traffic (default %(default)s)",
-    )
-    a(
-        "--status-s",
-        type=float,
-        default=30.0,
-        metavar="S",
-        help="seconds between status messages (default %(default)s)",
-    )
+    a("--topic-root", default=DEFAULT_ROOT, metavar="R",
+      help="topic root; batches go to R/site/SITE/hits (default %(default)s)")
+    a("--source", default="pipe:-", metavar="SPEC",
+      help="file:PATH (regular file: upload; FIFO or '-': real time), pipe:- (standard "
+           "input), or sim:RATE (simulated detector, RATE hits/s); default %(default)s")
+    a("--spool", type=Path, metavar="DIR",
+      help="spool directory, one per site (default ~/.local/state/tocsin/spool/SITE)")
+    a("--batch-s", type=float, default=1.0, metavar="S",
+      help="GPS seconds per batch (default %(default)s)")
+    a("--max-batch-hits", type=int, default=50_000, metavar="N",
+      help="close a batch early at N hits (default %(default)s)")
+    a("--spool-max-mb", type=float, default=256.0, metavar="M",
+      help="spool bound in MB (10^6 bytes); when full, new batches are dropped and their time "
+           "is reported as dead time (default %(default)s)")
+    a("--grace-s", type=float, default=DEFAULT_GRACE_S, metavar="S",
+      help="real-time input: how late a line may arrive after its hit time (default %(default)s)")
+    a("--stall-s", type=float, default=DEFAULT_STALL_S, metavar="S",
+      help="real-time input: silence (no line at all; comment lines count) after which the "
+           "site stops counting as live; 0 = never (default %(default)s)")
+    a("--keepalive-s", type=int, default=30, metavar="S",
+      help="MQTT keepalive; the broker announces the last will after 1.5 x S without "
+           "traffic (default %(default)s)")
+    a("--status-s", type=float, default=30.0, metavar="S",
+      help="seconds between status messages (default %(default)s)")
     a("--ca-file", type=Path, metavar="F", help="TLS: CA certificate(s) (mqtts:// only)")
     a("--cert-file", type=Path, metavar="F", help="TLS: client certificate (mqtts:// only)")
     a("--key-file", type=Path, metavar="F", help="TLS: client key (mqtts:// only)")
@@ -143,36 +93,26 @@ def _check(ok: bool, message: str) -> None:
 
 def settings_from_args(args: argparse.Namespace, env: dict[str, str]) -> AgentSettings:
     """Validate the options; ``ValueError`` with a one-line reason naming the value."""
-    _check(
-        valid_site_id(args.site),
-        f"--site {args.site!r} is not a valid site id ([a-z0-9][a-z0-9-]{{0,62}})",
-    )
+    _check(valid_site_id(args.site), f"--site {args.site!r} is not a valid site id "
+           "([a-z0-9][a-z0-9-]{0,62})")
     _check(0.01 <= args.batch_s <= 3600, f"--batch-s {args.batch_s!r} must be in [0.01, 3600]")
     _check(args.max_batch_hits >= 1, f"--max-batch-hits {args.max_batch_hits!r} must be >= 1")
-    _check(
-        0.005 <= args.spool_max_mb <= 1e7,
-        f"--spool-max-mb {args.spool_max_mb!r} must be in [0.005, 1e7]",
-    )
+    _check(0.005 <= args.spool_max_mb <= 1e7,
+           f"--spool-max-mb {args.spool_max_mb!r} must be in [0.005, 1e7]")
     _check(0 <= args.grace_s <= 60, f"--grace-s {args.grace_s!r} must be in [0, 60]")
-    _check(
-        args.stall_s == 0 or args.grace_s < args.stall_s <= 86400,
-        f"--stall-s {args.stall_s!r} must be 0 or in (grace, 86400]",
-    )
-    _check(
-        5 <= args.keepalive_s <= 3600, f"--keepalive-s {args.keepalive_s!r} must be in [5, 3600]"
-    )
+    _check(args.stall_s == 0 or args.grace_s < args.stall_s <= 86400,
+           f"--stall-s {args.stall_s!r} must be 0 or in (grace, 86400]")
+    _check(5 <= args.keepalive_s <= 3600,
+           f"--keepalive-s {args.keepalive_s!r} must be in [5, 3600]")
     _check(0 < args.status_s <= 3600, f"--status-s {args.status_s!r} must be in (0, 3600]")
-    _check(
-        args.duration is None or args.duration > 0, f"--duration {args.duration!r} must be positive"
-    )
+    _check(args.duration is None or args.duration > 0,
+           f"--duration {args.duration!r} must be positive")
     url = args.broker or env.get(ENV_URL)
     _check(url is not None, f"no broker: give --broker URL or set {ENV_URL}")
     password = None
     if args.password_env is not None:
-        _check(
-            args.password_env in env,
-            f"--password-env {args.password_env!r}: no such environment variable",
-        )
+        _check(args.password_env in env,
+               f"--password-env {args.password_env!r}: no such environment variable")
         password = env[args.password_env]
     else:
         password = env.get(ENV_PASSWORD)
@@ -221,11 +161,9 @@ def run(args: argparse.Namespace) -> int:
     )
     if isinstance(source, UploadSource):
         n = upload_batches(source.hits, settings.batch_ns)
-        _check(
-            n <= MAX_UPLOAD_BATCHES,
-            f"--source {args.source!r} spans {n} batches of {settings.batch_s:g} s, more than "
-            f"{MAX_UPLOAD_BATCHES}: use a longer --batch-s or split the file",
-        )
+        _check(n <= MAX_UPLOAD_BATCHES,
+               f"--source {args.source!r} spans {n} batches of {settings.batch_s:g} s, more than "
+               f"{MAX_UPLOAD_BATCHES}: use a longer --batch-s or split the file")
     try:
         return asyncio.run(_main(settings, source, args.duration))
     except BaseExceptionGroup as eg:  # the agent's task group: report the first real cause

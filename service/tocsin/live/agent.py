@@ -258,13 +258,8 @@ class _Batcher:
             self._drops += dropped
             now = time.monotonic()
             if now - self._drops_logged >= DROP_REPORT_EVERY_S:
-                event(
-                    log,
-                    "hits_dropped",
-                    logging.WARNING,
-                    count=self._drops,
-                    reason="older than the open batch (arrived after its batch was closed)",
-                )
+                event(log, "hits_dropped", logging.WARNING, count=self._drops,
+                      reason="older than the open batch (arrived after its batch was closed)")
                 self._drops, self._drops_logged = 0, now
 
     def mark(self, upto_ns: int) -> None:
@@ -370,27 +365,12 @@ class Agent:
             Spool, s.spool_dir, site=s.site, max_bytes=s.spool_max_bytes
         )
         rec = self._spool.recovery
-        event(
-            log,
-            "agent_start",
-            site=s.site,
-            source=self.source.describe(),
-            broker=s.broker.url,
-            client_id=s.broker.client_id,
-            spool=str(s.spool_dir),
-            pending=rec.pending,
-            next_seq=self._spool.next_seq,
-            version=__version__,
-        )
+        event(log, "agent_start", site=s.site, source=self.source.describe(), broker=s.broker.url,
+              client_id=s.broker.client_id, spool=str(s.spool_dir), pending=rec.pending,
+              next_seq=self._spool.next_seq, version=__version__)
         if rec.discarded_bytes:
-            event(
-                log,
-                "spool_repaired",
-                logging.WARNING,
-                discarded_bytes=rec.discarded_bytes,
-                segments=list(rec.damaged_segments),
-                kept=rec.records,
-            )
+            event(log, "spool_repaired", logging.WARNING, discarded_bytes=rec.discarded_bytes,
+                  segments=list(rec.damaged_segments), kept=rec.records)
         self._main = asyncio.create_task(self._run(), name=f"tocsin-agent-{s.site}")
         return self
 
@@ -417,14 +397,8 @@ class Agent:
         finally:
             if self._spool is not None:
                 self._spool.close()
-            event(
-                log,
-                "agent_stopped",
-                pending=self.spool.pending,
-                **self.stats.as_dict(),
-                lines=self.source.stats.lines,
-                bad_lines=self.source.stats.bad_lines,
-            )
+            event(log, "agent_stopped", pending=self.spool.pending, **self.stats.as_dict(),
+                  lines=self.source.stats.lines, bad_lines=self.source.stats.bad_lines)
 
     async def _run(self) -> None:
         async with asyncio.TaskGroup() as tg:
@@ -444,11 +418,8 @@ class Agent:
             await self._shutdown(*tasks)
 
     async def _shutdown(
-        self,
-        source: asyncio.Task[None],
-        writer: asyncio.Task[None],
-        status: asyncio.Task[None],
-        publisher: asyncio.Task[None],
+        self, source: asyncio.Task[None], writer: asyncio.Task[None],
+        status: asyncio.Task[None], publisher: asyncio.Task[None],
     ) -> None:
         s = self.settings
         source.cancel()
@@ -481,11 +452,8 @@ class Agent:
 
     def _check_finished(self) -> None:
         sp = self.spool
-        if (
-            self._source_done
-            and not self._closed
-            and not self._writing
-            and not (sp.staged or sp.pending)
+        if self._source_done and not self._closed and not self._writing and not (
+            sp.staged or sp.pending
         ):
             self._finished.set()
 
@@ -514,14 +482,8 @@ class Agent:
     async def _feed_upload(self, src: UploadSource) -> None:
         t, b = src.hits, self.settings.batch_ns
         start, end = upload_span(t, b)
-        event(
-            log,
-            "upload",
-            hits=int(t.size),
-            start_gps_ns=start,
-            end_gps_ns=end,
-            batches_at_least=(end - start) // b,
-        )
+        event(log, "upload", hits=int(t.size), start_gps_ns=start, end_gps_ns=end,
+              batches_at_least=(end - start) // b)
         self._cutter.open_at(start)
         self._cutter.put(t)
         self.stats.hits_in = int(t.size)
@@ -600,14 +562,9 @@ class Agent:
         st.refused_ns += b.end - b.start
         if self._refusing is None:
             self._refusing = [0, 0.0]
-            event(
-                log,
-                "spool_full",
-                logging.WARNING,
-                bound_bytes=self.spool.max_bytes,
-                pending=self.spool.pending,
-                effect="new batches are not kept; their time becomes dead time",
-            )
+            event(log, "spool_full", logging.WARNING, bound_bytes=self.spool.max_bytes,
+                  pending=self.spool.pending,
+                  effect="new batches are not kept; their time becomes dead time")
         self._refusing[0] += 1
         self._refusing[1] += (b.end - b.start) / NS_PER_S
 
@@ -615,13 +572,8 @@ class Agent:
         assert self._refusing is not None
         n, dead = self._refusing
         self._refusing = None
-        event(
-            log,
-            "spool_full_episode",
-            logging.WARNING,
-            refused_batches=int(n),
-            dead_time_s=round(dead, 6),
-        )
+        event(log, "spool_full_episode", logging.WARNING, refused_batches=int(n),
+              dead_time_s=round(dead, 6))
 
     async def _make_room(self, nbytes: int) -> None:
         """Upload mode: wait (syncing and committing) until the spool has room for a record."""
@@ -650,17 +602,9 @@ class Agent:
                 tls.load_cert_chain(str(b.cert_file), str(b.key_file) if b.key_file else None)
         will = aiomqtt.Will(self.status_topic, self._status_payload("offline"), qos=1, retain=True)
         client = aiomqtt.Client(
-            b.host,
-            b.port,
-            identifier=b.client_id,
-            username=b.username,
-            password=b.password,
-            keepalive=b.keepalive_s,
-            clean_session=True,
-            will=will,
-            tls_context=tls,
-            max_inflight_messages=s.in_flight,
-            timeout=s.publish_timeout_s,
+            b.host, b.port, identifier=b.client_id, username=b.username, password=b.password,
+            keepalive=b.keepalive_s, clean_session=True, will=will, tls_context=tls,
+            max_inflight_messages=s.in_flight, timeout=s.publish_timeout_s,
         )
         client.pending_calls_threshold = s.in_flight + 8  # ours are bounded by in_flight
         return client
@@ -686,15 +630,9 @@ class Agent:
                 self._client = None
             failures += 1
             delay = backoff.next()
-            event(
-                log,
-                "disconnected" if was_connected else "broker_unreachable",
-                logging.WARNING if failures <= 2 else logging.INFO,
-                error=str(error),
-                attempt=failures,
-                retry_in_s=round(delay, 2),
-                pending=self.spool.pending,
-            )
+            event(log, "disconnected" if was_connected else "broker_unreachable",
+                  logging.WARNING if failures <= 2 else logging.INFO, error=str(error),
+                  attempt=failures, retry_in_s=round(delay, 2), pending=self.spool.pending)
             await asyncio.sleep(delay)
 
     async def _session(self, client: aiomqtt.Client) -> None:
@@ -709,13 +647,8 @@ class Agent:
                 await self._send(client, tg)
         except asyncio.CancelledError:  # the agent stops (or failed): say so, then disconnect
             try:
-                await client.publish(
-                    self.status_topic,
-                    self._status_payload("offline"),
-                    qos=1,
-                    retain=True,
-                    timeout=STATUS_TIMEOUT_S,
-                )
+                await client.publish(self.status_topic, self._status_payload("offline"), qos=1,
+                                     retain=True, timeout=STATUS_TIMEOUT_S)
             except aiomqtt.MqttError as exc:
                 event(log, "offline_not_published", logging.WARNING, error=str(exc))
             raise
@@ -751,9 +684,8 @@ class Agent:
             # Completes on the broker's PUBACK: aiomqtt 2.5 Client.publish waits for an event set
             # by its on_publish callback, which paho-mqtt 2.2 calls for QoS 1 only from
             # _handle_pubackcomp (the PUBACK); with a timeout it raises MqttError instead.
-            await client.publish(
-                self.hits_topic, payload, qos=1, timeout=self.settings.publish_timeout_s
-            )
+            await client.publish(self.hits_topic, payload, qos=1,
+                                 timeout=self.settings.publish_timeout_s)
         finally:
             window.release()
         if self.spool.ack(seq):
@@ -768,17 +700,10 @@ class Agent:
         sp = self._spool
         spooled = 0 if sp is None else sp.pending + sp.staged
         last = None if sp is None or sp.next_seq == 0 else sp.next_seq - 1
-        return orjson.dumps(
-            {
-                "v": 1,
-                "site": self.settings.site,
-                "state": state,
-                "t_gps_ns": gps_now_ns(),
-                "spooled": spooled,
-                "seq": last,
-                "agent": f"tocsin/{__version__}",
-            }
-        )
+        return orjson.dumps({
+            "v": 1, "site": self.settings.site, "state": state, "t_gps_ns": gps_now_ns(),
+            "spooled": spooled, "seq": last, "agent": f"tocsin/{__version__}",
+        })
 
     async def _status_task(self) -> None:
         while True:
@@ -790,10 +715,5 @@ class Agent:
                 continue
             state = "spooling" if self._backlog else "online"
             with contextlib.suppress(aiomqtt.MqttError):  # a lost connection is the publisher's
-                await client.publish(
-                    self.status_topic,
-                    self._status_payload(state),
-                    qos=1,
-                    retain=True,
-                    timeout=STATUS_TIMEOUT_S,
-                )
+                await client.publish(self.status_topic, self._status_payload(state), qos=1,
+                                     retain=True, timeout=STATUS_TIMEOUT_S)

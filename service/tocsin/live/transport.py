@@ -141,11 +141,7 @@ class _Expect:
 
 class _Subscriber:
     def __init__(
-        self,
-        name: str,
-        peer: str,
-        reader: asyncio.StreamReader,
-        writer: asyncio.StreamWriter,
+        self, name: str, peer: str, reader: asyncio.StreamReader, writer: asyncio.StreamWriter,
         queue_size: int,
     ) -> None:
         self.name = name
@@ -328,9 +324,8 @@ class TransportServer:
                 with contextlib.suppress(OSError, TimeoutError):
                     await asyncio.wait_for(writer.wait_closed(), 1.0)
                 return
-            await self._serve(
-                _Subscriber(name, f"{peer[0]}:{peer[1]}", reader, writer, self._queue_size)
-            )
+            await self._serve(_Subscriber(name, f"{peer[0]}:{peer[1]}", reader, writer,
+                                          self._queue_size))
         finally:
             if task is not None:
                 self._handlers.discard(task)
@@ -375,14 +370,8 @@ class TransportServer:
         sub.writer.transport.abort()  # a stalled peer would never let close() flush
         self.counters.disconnects[ended.reason] += 1
         level = logging.INFO if ended.reason in _QUIET_REASONS else logging.WARNING
-        log.log(
-            level,
-            "VTP server: subscriber %r (%s) disconnected: %s: %s",
-            sub.name,
-            sub.peer,
-            ended.reason,
-            ended.detail,
-        )
+        log.log(level, "VTP server: subscriber %r (%s) disconnected: %s: %s",
+                sub.name, sub.peer, ended.reason, ended.detail)
         lost = [] if sub.in_flight is None else [sub.in_flight]
         sub.in_flight = None
         while not sub.queue.empty():
@@ -413,21 +402,13 @@ class TransportServer:
                 return _Ended("protocol", f"unsolicited {msg.role!r} for {msg.origin!r}")
             wanted = ("iamalive",) if expect.kind == "iamalive" else ("ack", "nak")
             if msg.role not in wanted:
-                return _Ended(
-                    "protocol",
-                    f"{msg.role!r} for {msg.origin!r} while waiting for "
-                    f"the reply to {expect.kind} {expect.origin!r}",
-                )
+                return _Ended("protocol", f"{msg.role!r} for {msg.origin!r} while waiting for "
+                              f"the reply to {expect.kind} {expect.origin!r}")
             if msg.origin != expect.origin:
                 # One message is in flight at a time, so this is its reply; a peer that
                 # could not read the IVORN (e.g. of a packet it refused) may leave it out.
-                log.warning(
-                    "VTP server: %s from %r names %r, expected %r",
-                    msg.role,
-                    sub.name,
-                    msg.origin,
-                    expect.origin,
-                )
+                log.warning("VTP server: %s from %r names %r, expected %r",
+                            msg.role, sub.name, msg.origin, expect.origin)
             expect.reply.set_result(msg)
 
     async def _write_loop(self, sub: _Subscriber) -> _Ended:
@@ -454,21 +435,15 @@ class TransportServer:
                 sub.in_flight = None
                 self.counters.timed_out += 1
                 self._report(sub.name, delivery.ivorn, "timeout")
-                return _Ended(
-                    "ack_timeout",
-                    f"no ack or nak for {delivery.ivorn!r} within {self._reply_timeout_s} s",
-                )
+                return _Ended("ack_timeout", f"no ack or nak for {delivery.ivorn!r} "
+                              f"within {self._reply_timeout_s} s")
             except OSError as exc:
                 return _Ended("send_failed", repr(exc))
             sub.in_flight = None
             if reply.role == "nak":
                 self.counters.naked += 1
-                log.warning(
-                    "VTP server: subscriber %r refused %s: %s",
-                    sub.name,
-                    delivery.ivorn,
-                    reply.result,
-                )
+                log.warning("VTP server: subscriber %r refused %s: %s",
+                            sub.name, delivery.ivorn, reply.result)
                 self._report(sub.name, delivery.ivorn, "nak")
             else:
                 self.counters.acked += 1
@@ -535,13 +510,10 @@ class TransportClient:
         rng: random.Random | None = None,
     ) -> None:
         if not 0 < backoff_min_s <= backoff_max_s:
-            raise ValueError(
-                f"need 0 < backoff_min_s ({backoff_min_s!r}) <= backoff_max_s ({backoff_max_s!r})"
-            )
-        for label, value in (
-            ("silence_timeout_s", silence_timeout_s),
-            ("connect_timeout_s", connect_timeout_s),
-        ):
+            raise ValueError(f"need 0 < backoff_min_s ({backoff_min_s!r}) <= backoff_max_s "
+                             f"({backoff_max_s!r})")
+        for label, value in (("silence_timeout_s", silence_timeout_s),
+                             ("connect_timeout_s", connect_timeout_s)):
             if not value > 0:
                 raise ValueError(f"{label} {value!r} must be > 0")
         if dedup_capacity < 1:
@@ -619,13 +591,8 @@ class TransportClient:
                     writer.close()
                 self.counters.disconnects[ended.reason] += 1
                 level = logging.INFO if ended.reason == "closed" else logging.WARNING
-                log.log(
-                    level,
-                    "VTP client: connection to %s ended: %s: %s",
-                    where,
-                    ended.reason,
-                    ended.detail,
-                )
+                log.log(level, "VTP client: connection to %s ended: %s: %s",
+                        where, ended.reason, ended.detail)
                 if healthy:
                     delay = self._backoff[0]
             pause = delay * (1.0 + 0.1 * self._rng.random())
@@ -691,11 +658,8 @@ class TransportClient:
         if packet.dedup_key in self._seen:
             self._seen.move_to_end(packet.dedup_key)
             self.counters.duplicates += 1
-            log.info(
-                "VTP client: duplicate of %s (key %s) acknowledged, not passed on",
-                packet.ivorn,
-                packet.dedup_key,
-            )
+            log.info("VTP client: duplicate of %s (key %s) acknowledged, not passed on",
+                     packet.ivorn, packet.dedup_key)
             return self._ack(packet.ivorn), True
         try:
             await self._on_packet(packet.raw, packet.voevent)
@@ -703,9 +667,8 @@ class TransportClient:
             self.counters.callback_errors += 1
             log.exception("VTP client: handling %s failed", packet.ivorn)
             self.counters.naks_sent += 1
-            return framing.nak(
-                packet.ivorn, self._clock(), f"receiver error: {exc!r}", response=self._response
-            ), True
+            return framing.nak(packet.ivorn, self._clock(), f"receiver error: {exc!r}",
+                               response=self._response), True
         self._seen[packet.dedup_key] = None
         if len(self._seen) > self._dedup_capacity:
             self._seen.popitem(last=False)
@@ -720,6 +683,5 @@ class TransportClient:
         self.counters.rejected[exc.reason] += 1
         self.counters.naks_sent += 1
         log.warning("VTP client: refused packet %s: %s", ivorn or "(no IVORN)", exc)
-        return framing.nak(
-            ivorn or "", self._clock(), f"{exc.reason}: {exc.detail}", response=self._response
-        )
+        return framing.nak(ivorn or "", self._clock(), f"{exc.reason}: {exc.detail}",
+                           response=self._response)
