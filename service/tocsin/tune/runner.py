@@ -11,6 +11,7 @@ within a fraction of a second, and the parent reports the interruption.
 
 from __future__ import annotations
 
+import itertools
 import multiprocessing
 import os
 import signal
@@ -100,10 +101,11 @@ def replay_hits(
         release_every_s=REPLAY_BLOCK_S,
     )
     latest: dict[str, Candidate] = {}
-    for k, b in enumerate(job.net.batches(hits)):
-        for c in pipe.offer(b):
+    batches = iter(job.net.batches(hits))
+    while chunk := list(itertools.islice(batches, STOP_CHECK_BATCHES)):
+        for c in pipe.offer_many(chunk):  # as offer() one by one, in runs
             latest[c.id] = c
-        if stop is not None and k % STOP_CHECK_BATCHES == 0 and stop.is_set():
+        if stop is not None and stop.is_set():
             raise Interrupted(0, 0)
     for c in pipe.finish():
         latest[c.id] = c
