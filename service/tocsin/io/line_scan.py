@@ -2,10 +2,11 @@
 
 A recording line of an agent's plain 1 s batch (``{"v":1,"site":"...","seq":N,
 "live":[a,b],"t":[...],"recv_ns":R}``, keys in any order, JSON whitespace allowed)
-is read by one compiled pass over the bytes of a chunk of lines (numba, no Python
-object per hit or per line), straight into int64 columns. Most of a replay's time
-outside the engine went into building a Python dict, list and int per line and hit
-and then checking them one by one; this pass does neither.
+is read by compiled passes over the bytes of a block of lines (numba, no Python
+object per hit or per line): :func:`split_lines` finds and strips the lines,
+:func:`scan_lines` reads each into int64 columns. Most of a replay's time outside
+the engine went into building a Python dict, list and int per line and hit and
+then checking them one by one; these passes do neither.
 
 The pass takes only what it is sure of, and hands every other line back to the
 ordinary way (:func:`tocsin.io.recording.decode_line`: orjson and the batch rules),

@@ -17,6 +17,7 @@ accepts.
 from __future__ import annotations
 
 import operator
+from dataclasses import dataclass
 from typing import Annotated, Any, Literal, NamedTuple
 
 import numpy as np
@@ -305,7 +306,8 @@ _LIVE_END = operator.attrgetter("live_end")
 _RECV = operator.attrgetter("recv_ns")
 
 
-class BatchColumns(NamedTuple):
+@dataclass(frozen=True, slots=True)
+class BatchColumns:
     """Many validated batches as columns, for bulk intake (replay): batch ``k`` is
     site index ``site[k]``, ``seq[k]``, live ``[live_start[k], live_end[k])``, arrival
     ``recv[k]`` (``NO_RECV``: none given) and hit times ``t[t_a[k]:t_b[k]]``. The
