@@ -191,8 +191,6 @@ class FrontSearch:
         self.widest: I64Array = self.scale_active.sum(axis=0).astype(np.int64) - 1
         """(N,) index of each site's widest active front scale (-1: none)."""
         self._up_soa = [np.ascontiguousarray(self.up[:, c]) for c in range(3)]
-        self._width = [h - self.lo for h in self.hi]
-        """Per front scale, (N, N) slot widths (ns)."""
         self._tol_base = cfg.clock_sigmas * max_sig
         self.screen = True
         """Skip seeds whose compiled lower bound (:mod:`tocsin.engine.front_bound`)
@@ -234,7 +232,7 @@ class FrontSearch:
                 continue
             # the seed sites' rows only; sites not counted and the seed's own site
             # occupy nothing
-            q = -np.expm1(-lam[None, :] * self._width[k][rows])
+            q = -np.expm1(-lam[None, :] * (self.hi[k][rows] - self.lo[rows]))
             q[:, ~use] = 0.0
             q[np.arange(rows.size), rows] = 0.0
             out[rows] += poisson_binomial_pmf_top(q, 3)[:, 3]  # P(K >= 3)
