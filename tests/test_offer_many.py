@@ -173,20 +173,27 @@ def test_feed_equals_decoding_and_offering_line_by_line() -> None:
     text = b"\n".join(lines)  # no newline after the last line
     a = Pipeline(REG, EngineConfig(), candidate_far_per_year=1e9, release_every_s=REPLAY_BLOCK_S)
     b = Pipeline(REG, EngineConfig(), candidate_far_per_year=1e9, release_every_s=REPLAY_BLOCK_S)
-    want, want_bad = [], []
+    want, want_bad, want_recv = [], [], []
     for k, raw in enumerate(io.BytesIO(text), start=1):
         if not raw.strip():
             continue
         item = decode_line(raw.strip(), REG, line_no=k)
         if isinstance(item, Rejected):
             want_bad.append(item)
+        elif item.recv_ns is not None:
+            want_recv.append((item.recv_ns, item.live_end))
         want += a.offer(item)
     want += a.finish()
-    got, got_bad = [], []
+    got, got_bad, got_recv = [], [], []
     for fed in b.feed(read_blocks(io.BytesIO(text), size=300)):
         got_bad += fed.rejected
         got += fed.candidates
+        if fed.last_recv_ns is not None:
+            got_recv.append((fed.last_recv_ns, fed.last_live_end_ns))
     got += b.finish()
+    # the latest arrival and live end the blocks report are those of the batches
+    assert max(r for r, _ in got_recv) == max(r for r, _ in want_recv)
+    assert max(e for _, e in got_recv) == max(e for _, e in want_recv)
     assert [c.to_json_line() for c in got] == [c.to_json_line() for c in want]
     assert got_bad == want_bad and len(want_bad) >= 2
     assert b.counters == a.counters

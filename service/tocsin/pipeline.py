@@ -20,7 +20,7 @@ from tocsin.engine.core import Engine
 from tocsin.io.line_scan import scan_block
 from tocsin.io.line_scan import warm_up as warm_line_scan
 from tocsin.io.recording import Rejected
-from tocsin.model.batch import BatchColumns, HitBatch
+from tocsin.model.batch import NO_RECV, BatchColumns, HitBatch
 from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
@@ -39,6 +39,11 @@ class Fed(NamedTuple):
     """The block's lines that could not be used, in order."""
     candidates: list[Candidate]
     """New candidates, in the order the engine gave them."""
+    last_recv_ns: int | None
+    """The latest arrival time (GPS ns) among the block's batches that give one (None:
+    none does)."""
+    last_live_end_ns: int | None
+    """The latest live end (GPS ns) among those same batches."""
 
 
 @dataclass(slots=True)
@@ -160,18 +165,25 @@ class Pipeline:
         stripped, non-empty line. Call :meth:`finish` at the end of input."""
         for data, first_line_no in blocks:
             scan = scan_block(data, self.registry, first_line_no)
+            cols = scan.cols
             out: list[Candidate] = []
             bad: list[Rejected] = []
+            with_recv = cols.recv != NO_RECV
+            recv = [int(cols.recv.max())] if with_recv.any() else []
+            ends = [int(cols.live_end[with_recv].max())] if recv else []
             row = 0
             for pos, item in scan.others:
                 upto = int(np.searchsorted(scan.row_pos, pos))
-                out += self.offer_columns(scan.cols, row, upto)
+                out += self.offer_columns(cols, row, upto)
                 row = upto
                 if type(item) is Rejected:
                     bad.append(item)
+                elif item.recv_ns is not None:  # type: ignore[union-attr]
+                    recv.append(item.recv_ns)  # type: ignore[union-attr]
+                    ends.append(item.live_end)  # type: ignore[union-attr]
                 out += self.offer(item)
-            out += self.offer_columns(scan.cols, row, len(scan.cols))
-            yield Fed(bad, out)
+            out += self.offer_columns(cols, row, len(cols))
+            yield Fed(bad, out, max(recv, default=None), max(ends, default=None))
 
     def tick(self, now_ns: int) -> list[Candidate]:
         """Advance the watermark on an idle timer (live service).

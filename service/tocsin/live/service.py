@@ -51,14 +51,14 @@ from tocsin.errors import BatchRejected
 from tocsin.gpstime import gps_now_ns
 from tocsin.io import checkpoint
 from tocsin.io.journal import Journal, prune, read_from, segments
-from tocsin.io.recording import decode_line
+from tocsin.io.recording import join_lines
 from tocsin.live import topics
 from tocsin.live.alert_dispatch import AlertDispatcher
 from tocsin.live.followup_wiring import followup_for, refill_ring, start_followup
 from tocsin.live.logs import event
 from tocsin.live.metrics import Metrics
 from tocsin.live.transport import AllowedNetwork, TransportServer
-from tocsin.model.batch import HitBatch, parse_batch
+from tocsin.model.batch import parse_batch
 from tocsin.model.candidate import Candidate
 from tocsin.model.registry import SiteRegistry
 from tocsin.model.service_config import BrokerConfig, ServiceConfig
@@ -158,17 +158,17 @@ class Service:
                 lateness_ns=self.lateness_ns,
                 quantum_ns=pipe.orderer.quantum_ns,
             )
-        n = 0
+        n = pipe.counters.batches
         # Without a checkpoint, the last two background stretches rebuild every rate
         # estimate; older journal (months of it) is not needed.
         since = None if ck is not None else self.clock() - round(REBUILD_S * NS_PER_S)
-        for line in read_from(self.journal.directory, ck.position if ck else None, since_ns=since):
-            item = decode_line(line, self.registry)
-            if isinstance(item, HitBatch) and item.recv_ns is not None:
-                self._last_recv = max(self._last_recv, item.recv_ns)
-                self._max_live_end = max(self._max_live_end, item.live_end)
-            self._write(pipe.offer(item), live=False)
-            n += 1
+        lines = read_from(self.journal.directory, ck.position if ck else None, since_ns=since)
+        for fed in pipe.feed(join_lines(lines)):  # as replay reads it
+            if fed.last_recv_ns is not None and fed.last_live_end_ns is not None:
+                self._last_recv = max(self._last_recv, fed.last_recv_ns)
+                self._max_live_end = max(self._max_live_end, fed.last_live_end_ns)
+            self._write(fed.candidates, live=False)
+        n = pipe.counters.batches - n
         now = pipe.orderer.now or 0
         self._last_recv = max(self._last_recv, now)
         self._max_live_end = max(self._max_live_end, now)
