@@ -1,9 +1,11 @@
-"""Ordering stage + engine, fed one decoded batch at a time.
+"""Ordering stage + engine, fed one decoded batch at a time (:meth:`Pipeline.offer`)
+or many (:meth:`Pipeline.feed`, :meth:`Pipeline.offer_many`: the same result).
 
 The single code path from batches to candidates: ``tocsin replay`` drives it from
-a recording, the live service from MQTT, tuning from shifted recordings. Each
-batch carries its arrival time (``recv_ns``); the watermark follows it, so the
-same arrivals give the same blocks and the same candidates.
+a recording, the live service from MQTT (and from its journal after a restart),
+tuning from shifted recordings. Each batch carries its arrival time (``recv_ns``);
+the watermark follows it, so the same arrivals give the same blocks and the same
+candidates.
 """
 
 from __future__ import annotations
