@@ -248,14 +248,17 @@ class Orderer:
         return BatchColumns.join(groups)
 
     def _release_to(self, w: GpsNs) -> Block | None:
+        c: BatchColumns | None = None
         if self.watermark is None:
             if not self._pending:
                 return None
-            self.watermark = GpsNs(int(self._columns().live_start.min()))
+            c = self._columns()
+            self.watermark = GpsNs(int(c.live_start.min()))
         if w <= self.watermark:
             return None
         w0 = self.watermark
-        c = self._columns()
+        if c is None:
+            c = self._columns()
         starts, ends, t = c.live_start, c.live_end, c.t
         taken = starts < w
         take_idx = np.flatnonzero(taken)
