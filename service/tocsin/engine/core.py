@@ -115,8 +115,7 @@ class Engine:
         self.bin_ns = round(cfg.rate.bin_s * NS_PER_S)
         self.bg_bins = math.ceil(cfg.rate.background_s / cfg.rate.bin_s)
         self.update_bins = max(1, round(RATE_UPDATE_S / cfg.rate.bin_s))
-        self.coinc = CoincidenceTrigger(registry, cfg.coincidence)
-        self.front = FrontSearch(registry, cfg.coincidence)
+        self._derive()
         # (statistic, scale index, scale s, how far ahead of a seed its slots reach)
         self._evals: list[tuple[str, int, float, int]] = [
             ("sites", k, w, a)
@@ -139,8 +138,6 @@ class Engine:
         self._last_t: I64Array = np.full(n, NO_PREVIOUS_NS, dtype=np.int64)
         """Time of each site's latest hit so far (GPS ns; NO_PREVIOUS_NS: none)."""
         self._prog: list[GpsNs | None] = [None] * len(self._evals)
-        self._tables: dict[tuple[int, bytes], Tables] = {}
-        self._bin_tables: dict[int, Tables] = {}
         self._estimates: dict[int, RateEstimate] = {}
         self.live_intervals = LiveIntervals(n)
         horizon = 2 * self.coinc.max_ahead_ns + 2 * excess_bins * self.bin_ns + 2 * self.bin_ns
@@ -168,10 +165,14 @@ class Engine:
 
     def __setstate__(self, state: dict[str, Any]) -> None:
         self.__dict__.update(state)
+        self._derive()
+
+    def _derive(self) -> None:
+        """Build the members of :attr:`_DERIVED` from the registry and configuration."""
         self.coinc = CoincidenceTrigger(self.registry, self.cfg.coincidence)
         self.front = FrontSearch(self.registry, self.cfg.coincidence)
-        self._tables = {}
-        self._bin_tables = {}
+        self._tables: dict[tuple[int, bytes], Tables] = {}
+        self._bin_tables: dict[int, Tables] = {}
 
     # ------------------------------------------------------------------
     def process(self, block: Block) -> list[Candidate]:
