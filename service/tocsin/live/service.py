@@ -158,7 +158,7 @@ class Service:
                 lateness_ns=self.lateness_ns,
                 quantum_ns=pipe.orderer.quantum_ns,
             )
-        n = pipe.counters.batches
+        offered_before = pipe.counters.batches
         # Without a checkpoint, the last two background stretches rebuild every rate
         # estimate; older journal (months of it) is not needed.
         since = None if ck is not None else self.clock() - round(REBUILD_S * NS_PER_S)
@@ -168,7 +168,7 @@ class Service:
                 self._last_recv = max(self._last_recv, fed.last_recv_ns)
                 self._max_live_end = max(self._max_live_end, fed.last_live_end_ns)
             self._write(fed.candidates, live=False)
-        n = pipe.counters.batches - n
+        n = pipe.counters.batches - offered_before
         now = pipe.orderer.now or 0
         self._last_recv = max(self._last_recv, now)
         self._max_live_end = max(self._max_live_end, now)
