@@ -626,7 +626,7 @@ def main(argv: list[str] | None = None) -> int:
     hist_vec = Counter(vec_mult.values())
     hist_vec[1] = n_active - len(vec_mult)
     # the compiled count alone (what evaluate runs for every seed before the p-value)
-    seeds = np.flatnonzero(active[s_all[:n_slice]])
+    slice_seeds = np.flatnonzero(active[s_all[:n_slice]])
     prev = previous_same_site(t_all, s_all)
     s64 = s_all.astype(np.int64)
     kk_box: list[I64Array] = []
@@ -639,8 +639,8 @@ def main(argv: list[str] | None = None) -> int:
                 t_all,
                 s64,
                 prev,
-                t_all[seeds],
-                s64[seeds],
+                t_all[slice_seeds],
+                s64[slice_seeds],
                 slots.edges,
                 slots.counted,
                 slots.rows,
@@ -652,7 +652,7 @@ def main(argv: list[str] | None = None) -> int:
         )
 
     t_comp = best_of(compiled, 3)
-    comp_mult = {int(i): int(k) + 1 for i, k in zip(seeds, kk_box[0], strict=True) if k >= 1}
+    comp_mult = {int(i): int(k) + 1 for i, k in zip(slice_seeds, kk_box[0], strict=True) if k >= 1}
     agree_comp = comp_mult == plain_mult
     rows.append(Row(f"4a. plain Python per hit, W={w_s:g} s, slice", n_slice, t_plain))
     rows.append(Row(f"4b. CoincidenceTrigger.evaluate, W={w_s:g} s", n_slice, t_vec))
