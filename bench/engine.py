@@ -28,7 +28,9 @@ What it does:
   state (``--warmup 120`` gives the same figure and adds a minute to the run);
 * measures, in the same run: (1) ``Engine.process`` over the timed blocks (one thread;
   (1b) again with the engine's default threads, when the machine has more than one
-  core: not a one-core figure, so not held to the targets); (2) the
+  core: not a one-core figure, so not held to the targets); (1c - 1g) the same timed
+  data through another warmed engine with its phases timed one by one ('sites'
+  counts, front search, rate tables, excess tests, the rest); (2) the
   replay path as ``tocsin replay`` runs it (``Pipeline.feed``: lines read in chunks by
   the compiled line reader and offered in runs, after ``gc.freeze()``) over the same
   data encoded as one JSON batch per site per second, (2a) the reading of those
@@ -41,7 +43,8 @@ What it does:
   (``slot_counts``), and whether all three give the same multiplicity for every seed.
 
 Run: ``.venv/bin/python bench/engine.py [--sites 1000] [--rate 10] [--seconds 60]
-[--layout array|continental] [--profile 25]``.
+[--layout array|continental] [--no-front] [--profile 25]`` (``--no-front``: the
+engine without the plane-front search, to see what it costs).
 """
 
 from __future__ import annotations
@@ -524,10 +527,10 @@ def main(argv: list[str] | None = None) -> int:
         t_th = time.perf_counter() - t_th
         rows.append(Row(f"1b. Engine.process, {n_threads} threads", n_timed, t_th))
 
-    # ---- 1c-1f. where the engine's time goes ---------------------------------------
+    # ---- 1c-1g. where the engine's time goes ---------------------------------------
     # A separate warmed engine, one thread, each phase timed on its own. The rate
-    # tables and the excess tests cost per site and per minute of data, whatever
-    # the hit rate; the rest costs per hit.
+    # tables and the excess tests cost per site and per minute of data rather than
+    # per hit; the coincidence searches cost per hit.
     spent = time_phases(phase_engine, timed_blocks)
     letters = "cdef"
     for (name, what), letter in zip(PHASES, letters, strict=True):
