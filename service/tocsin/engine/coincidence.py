@@ -193,8 +193,10 @@ class SlotGeometry:
         self.n_sites = len(registry)
         self.scales_ns = np.array([round(w * 1e9) for w in scales_s], dtype=np.int64)
         self.lo = -np.ceil(clock_sigmas * comb)  # (N, N), <= 0
-        base_hi = np.ceil(light + clock_sigmas * comb)
-        self.hi = base_hi[None, :, :] + self.scales_ns[:, None, None]  # (S, N, N)
+        self.base_hi = np.ceil(light + clock_sigmas * comb)
+        """(N, N) upper slot edges without the scale (ns): ``hi[s] - W_s`` at any scale,
+        and still there when no scale is configured."""
+        self.hi = self.base_hi[None, :, :] + self.scales_ns[:, None, None]  # (S, N, N)
         self.width = self.hi - self.lo[None, :, :]
         # flat copies, indexed by seed site * N + site (one index for several tables)
         self.lo_flat = self.lo.reshape(-1)

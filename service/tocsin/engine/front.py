@@ -199,7 +199,7 @@ class FrontSearch:
             np.ascontiguousarray(self.ecef, dtype=np.float64),
             np.ascontiguousarray(self.up, dtype=np.float64),
             np.ascontiguousarray(self.sigma, dtype=np.float64),
-            _pair_table(self.lo, self._base_hi(registry), pair_el),
+            _pair_table(self.lo, geom.base_hi, pair_el),
             np.ascontiguousarray(self.ecef / C_M_PER_NS, dtype=np.float64),
             np.ascontiguousarray(cfg.clock_sigmas * self.sigma, dtype=np.float64),
             self.scales_ns.astype(np.float64),
@@ -209,17 +209,6 @@ class FrontSearch:
             HORIZON_SLACK,
         )
         warm_front_bound()
-
-    def _base_hi(self, registry: SiteRegistry) -> F64Array:
-        """(N, N) upper slot edges without a scale (ns): ``hi - W`` at any front scale,
-        worked out at a zero-width scale when no front scale is configured (the
-        search is then off, but the geometry is still built)."""
-        if self.scales_ns.size:
-            base: F64Array = self.hi[0] - self.scales_ns[0]
-            return base
-        zero = SlotGeometry(registry, clock_sigmas=self.cfg.clock_sigmas, scales_s=[0.0])
-        out: F64Array = zero.hi[0]
-        return out
 
     def seed_weight(self, rates_per_ns: F64Array) -> F64Array:
         """Front evaluations per seed hit that can yield a front, per seed site (added
