@@ -10,34 +10,18 @@ enough that every 16 s block is cut into parts.
 from __future__ import annotations
 
 from collections.abc import Callable
-from pathlib import Path
 
 import pytest
 
+from tests.shipped import DATA, replay_shipped
 from tocsin.engine import core, front
 from tocsin.engine.coincidence import SeedResult
-from tocsin.io.recording import read_recording
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
-from tocsin.pipeline import Pipeline
-
-DATA = Path(__file__).resolve().parents[1] / "replay_data"
 
 
 def _lines(threads: int) -> list[bytes]:
-    registry = SiteRegistry.from_toml(DATA / "network.toml")
-    pipe = Pipeline(
-        registry,
-        EngineConfig(),
-        candidate_far_per_year=1e7,
-        release_every_s=16.0,
-        threads=threads,
-    )
-    out: list[bytes] = []
-    for item in read_recording(DATA / "demo.jsonl.gz", registry):
-        out += [c.to_json_line() for c in pipe.offer(item)]
-    out += [c.to_json_line() for c in pipe.finish()]
-    return out
+    return [c.to_json_line() for c in replay_shipped(EngineConfig(), threads=threads)]
 
 
 def test_threads_give_byte_identical_candidates(monkeypatch: pytest.MonkeyPatch) -> None:

@@ -4,25 +4,12 @@ for the front."""
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import numpy as np
 
+from tests.shipped import DATA, replay_shipped
 from tocsin.engine.core import Engine
-from tocsin.io.recording import read_recording
-from tocsin.model.candidate import Candidate
 from tocsin.model.config import EngineConfig
 from tocsin.model.registry import SiteRegistry
-from tocsin.pipeline import Pipeline
-
-DATA = Path(__file__).resolve().parents[1] / "replay_data"
-
-
-def _replay(cfg: EngineConfig) -> list[Candidate]:
-    registry = SiteRegistry.from_toml(DATA / "network.toml")
-    pipe = Pipeline(registry, cfg, candidate_far_per_year=1e7, release_every_s=16.0)
-    out = [c for x in read_recording(DATA / "demo.jsonl.gz", registry) for c in pipe.offer(x)]
-    return out + pipe.finish()
 
 
 def test_engine_without_the_front_search_runs_the_other_statistics() -> None:
@@ -30,8 +17,8 @@ def test_engine_without_the_front_search_runs_the_other_statistics() -> None:
     off = on.model_copy(
         update={"coincidence": on.coincidence.model_copy(update={"front_scales_s": []})}
     )
-    with_front = _replay(on)
-    without = _replay(off)
+    with_front = replay_shipped(on)
+    without = replay_shipped(off)
     assert any(c.statistic == "front" for c in with_front)  # the search does run by default
     assert not any(c.statistic == "front" for c in without)
 
